@@ -18,6 +18,40 @@ f32      4      IEEE-754 binary32
 str      1+n    u8 byte count n (0..64) then n bytes of UTF-8, no terminator
 list     1+k*m  u8 item count k (0..16) then k items of a fixed item layout (m bytes)
 =======  =====  ==============================================================
+
+Device state machine (normative; SPEC.md restates it with tables):
+
+- States: DISARMED (outputs zero), ARMED (loops closed, outputs live), RUNNING (armed and running
+  one experiment), KILLED (outputs zero, latched). Boot state: DISARMED.
+- Each host message lists the states it is legal in (``legal_in``). Outside them the device sends
+  Refuse: WRONG_STATE in general; KILL_LATCHED when the state is KILLED; BUSY when an experiment
+  runs (SettingWrite, ExperimentStart while RUNNING). Device-to-host types received by a device:
+  Refuse NOT_A_REQUEST. Unknown type ids: Refuse UNKNOWN_TYPE. A payload that does not decode:
+  Refuse MALFORMED. A frame whose protocol major differs: Refuse VERSION (sent in the device's own
+  version). The device never crashes or changes state on a refused message.
+- Arming interlock: ArmRequest (DISARMED) -> ArmChallenge(token, valid_ms). ArmConfirm with
+  response == token ^ 0xFFFFFFFF, operator_confirmed == 1, within valid_ms, with the watchdog fresh
+  -> Ack, state ARMED. Otherwise Refuse INTERLOCK (token wrong/expired/absent or operator flag 0) or
+  NO_KEEPALIVE. A token is good for one ArmConfirm only.
+- Watchdog: any valid frame from the host refreshes it. While ARMED or RUNNING, if no host frame
+  arrives for ``watchdog_s`` (a setting), the device kills with reason WATCHDOG (events
+  WATCHDOG_EXPIRED then KILL_TRIPPED). In DISARMED and KILLED the watchdog does nothing.
+- Kill: Kill is accepted in every state (Ack). Device-side trips (thresholds, saturation time,
+  watchdog, kill button, sensor fault) do the same. On a kill the outputs go to zero in the same
+  tick, any experiment ends (EXPERIMENT_FINISHED reason KILLED), the state becomes KILLED and a
+  KILL_TRIPPED event carries reason, axis, offending value and threshold. Only KillClear leaves
+  KILLED (to DISARMED, event KILL_CLEARED); KillClear in another state is acknowledged and changes
+  nothing. A second kill while KILLED is acknowledged and logged as another event.
+- Experiments: ExperimentStart (ARMED) -> RUNNING; it ends by ExperimentStop, by its duration limit,
+  by Disarm or by a kill, each with EXPERIMENT_FINISHED(reason) and the device back in ARMED (or
+  DISARMED/KILLED). Every state change also sends STATE_CHANGED.
+- Replies: a reply frame carries the request's seq and FLAG_REPLY. The device keeps the last 16
+  (seq, reply) pairs; a request that arrives with FLAG_RETRY and a seq in that cache is answered
+  with the cached reply and NOT executed again. Telemetry and Event frames use the device's own
+  sequence counter (incremented per frame) without FLAG_REPLY.
+- Versioning: the header's version byte is major << 4 | minor. Same major, different minor: both
+  sides work; a newer minor may append fields at the end of a payload, and a decoder ignores
+  trailing bytes it does not know. Different major: refused with VERSION.
 """
 
 from __future__ import annotations
