@@ -1,0 +1,346 @@
+"""Stand commands: ports, tune, autotune, demo. Thin shells over agent.workflows."""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import sys
+import threading
+import time
+from dataclasses import replace
+from pathlib import Path
+
+from rich.console import Console
+from rich.progress import BarColumn, Progress as RichProgress, TextColumn, TimeElapsedColumn
+from rich.table import Table
+
+from protocol.messages import KillReason
+
+from . import UserError
+
+DEFAULT_DEMO_SCENARIO = "gimbal-quad"
+
+
+def _console(args) -> Console:
+    # with --json, human output goes to stderr so stdout holds exactly one JSON object
+    return Console(stderr=bool(getattr(args, "json", False)), highlight=False)
+
+
+# ------------------------------------------------------------------------------ ports
+
+
+def cmd_ports(args) -> int:
+    from agent.link import list_ports
+    ports = list_ports()
+    con = Console(highlight=False)
+    if args.json:
+        print(json.dumps([{"device": d, "description": desc, "hwid": hw} for d, desc, hw in ports]))
+        return 0
+    if not ports:
+        con.print("No serial ports found. (The built-in simulated stand needs none: "
+                  "`tetherloop demo`, or `tetherloop mock --pty`.)")
+        return 0
+    table = Table("port", "description", "hardware id")
+    for d, desc, hw in ports:
+        table.add_row(d, desc, hw)
+    con.print(table)
+    return 0
+
+
+# ------------------------------------------------------------------------------ shared runner
+
+
+def _confirm(args, con: Console) -> dict:
+    from agent.safety import caution_text, confirm_cautions
+    if getattr(args, "confirm_safe", False):
+        con.print("[bold]SAFETY[/] — confirmed with --confirm-safe (logged):\n" + caution_text())
+        return {"cautions": "confirmed by --confirm-safe", "time": time.time()}
+    if not sys.stdin.isatty():
+        raise UserError("arming needs the operator's confirmation of the safety cautions: run "
+                        "interactively, or pass --confirm-safe in a scripted run (it is logged)")
+    ok = confirm_cautions(lambda q: con.input(q), lambda s: con.print(s))
+    if not ok:
+        raise UserError("not confirmed: nothing was armed", code=1)
+    return {"cautions": "confirmed interactively", "time": time.time()}
+
+
+def _logbook(args):
+    from agent.logbook import Logbook, LogbookError
+    try:
+        return Logbook(getattr(args, "log_dir", None))
+    except LogbookError as exc:
+        raise UserError(str(exc)) from None
+
+
+def _connect(port, args, mock=None):
+    from agent.link import LinkError
+    from agent.session import SessionError
+    from agent.stand import Stand
+    try:
+        return Stand.connect(port, baudrate=args.baud, mock=mock)
+    except (LinkError, SessionError) as exc:
+        if mock is not None:
+            mock.stop()
+        raise UserError(str(exc)) from None
+
+
+def run_on_stand(args, stand, plan, work, con: Console):
+    """Confirm, open the log, run ``work(stand, progress, stop)`` in a worker thread while the
+    main thread watches for Ctrl-C (which kills at once), and close everything."""
+    from agent.logbook import LogbookError
+    from agent.workflows import Progress
+    confirmations = _confirm(args, con)
+    try:
+        stand.open_log(_logbook(args), plan.as_dict(), confirmations)
+    except LogbookError as exc:
+        stand.close("log could not be opened")
+        raise UserError(f"{exc} (nothing was armed)") from None
+    stand.confirmed = True
+    stand.log_event("cautions_confirmed", **confirmations)
+    stop = threading.Event()
+    box: dict = {}
+    bar = RichProgress(TextColumn("{task.description}"), BarColumn(), TimeElapsedColumn(),
+                       console=con, transient=True, disable=getattr(args, "quiet", False))
+    task = bar.add_task("starting", total=1.0)
+    last_stage = [None]
+
+    def progress(p: Progress) -> None:
+        if p.fraction is not None:
+            bar.update(task, completed=p.fraction)
+        bar.update(task, description=p.message[:70])
+        if p.stage != "relay" and (p.stage, p.message) != last_stage[0]:
+            last_stage[0] = (p.stage, p.message)
+            if p.stage in ("analysis", "apply", "verify", "rollback", "noise", "info", "done"):
+                bar.console.print(f"[dim]{p.stage:>8}[/] {p.message}")
+
+    stand.listeners.append(lambda kind, payload: kind == "kill" and bar.console.print(
+        f"[bold red]KILL[/] {payload.get('origin')}: {payload.get('reason')} "
+        f"axis {payload.get('axis_name')} value {payload.get('value'):.4g} "
+        f"threshold {payload.get('threshold'):.4g} {payload.get('text', '')}"))
+
+    def worker():
+        try:
+            box["result"] = work(stand, progress, stop)
+        except BaseException as exc:  # reported by the main thread
+            box["error"] = exc
+
+    th = threading.Thread(target=worker, name="tetherloop-workflow", daemon=True)
+    interrupted = False
+    with bar:
+        th.start()
+        while th.is_alive():
+            try:
+                th.join(0.1)
+            except KeyboardInterrupt:
+                if not interrupted:
+                    interrupted = True
+                    stand.kill(KillReason.HOST_OPERATOR)
+                    stop.set()
+                    bar.console.print("[bold red]KILL sent (Ctrl-C).[/] Waiting for the board...")
+    return box, interrupted
+
+
+def _finish(stand, box, interrupted, con, args):
+    from agent.workflows import StandResult
+    err = box.get("error")
+    result = box.get("result")
+    outcome = "killed" if interrupted else (getattr(result, "outcome", None) or
+                                            ("error" if err else "ok"))
+    stand.close(outcome)
+    if err is not None and not isinstance(err, Exception):
+        raise err
+    return result, err, outcome
+
+
+def _summary_table(loops) -> Table:
+    t = Table("loop", "status", "Ku", "Tu [s]", "model", "rule", "kp", "ki", "kd", "Ms",
+              "verify", title="tuning summary")
+    for lr in loops:
+        d = lr.to_dict()
+        ver = d.get("verification") or {}
+        meas = (ver.get("measured") or {})
+        vtext = ("pass" if ver.get("passed") else "FAIL") if ver else "-"
+        if ver and meas.get("overshoot") is not None:
+            vtext += f" os {meas['overshoot']:.0%}"
+        ch = lr.chosen
+        t.add_row(lr.key, lr.status, _g(d.get("ultimate_gain")), _g(d.get("ultimate_period_s")),
+                  (d.get("model") or {}).get("kind", "-"), ch.rule if ch else "-",
+                  _g(ch.kp if ch else None), _g(ch.ki if ch else None),
+                  _g(ch.kd if ch else None), _g(ch.ms if ch else None), vtext)
+    return t
+
+
+def _g(x) -> str:
+    if x is None or (isinstance(x, float) and not math.isfinite(x)):
+        return "-"
+    return f"{x:.4g}"
+
+
+# ------------------------------------------------------------------------------ tune / autotune
+
+
+def cmd_tune(args) -> int:
+    from agent.plan import LoopPlan, Plan, PlanError, check_against_device, known_rules
+    from agent.workflows import tune_loop
+    con = _console(args)
+    if args.rule != "recommended" and args.rule not in known_rules():
+        raise UserError(f"unknown rule {args.rule!r}; expected recommended or one of "
+                        f"{', '.join(known_rules())}")
+    lp = LoopPlan(args.axis, args.loop, args.controller, args.rule, args.ms)
+    plan = Plan(loops=(lp,), apply=args.apply or args.verify, verify=args.verify)
+    if (args.axis == "heave" and args.loop == "angle") or (args.axis != "heave" and args.loop == "heave"):
+        raise UserError(f"axis {args.axis!r} has no {args.loop!r} loop: rotation axes have rate "
+                        "and angle loops, the heave axis has rate and heave")
+    stand = _connect(args.port, args)
+    try:
+        check_against_device(plan, stand.info.axes)
+    except PlanError as exc:
+        stand.close("plan rejected")
+        raise UserError(str(exc)) from None
+
+    def work(stand, progress, stop):
+        stand.monitor.limits = plan.limits
+        stand.arm()
+        try:
+            return tune_loop(stand, lp, plan, progress, stop)
+        finally:
+            if not stand.killed:
+                stand.disarm()
+
+    box, interrupted = run_on_stand(args, stand, plan, work, con)
+    result, err, outcome = _finish(stand, box, interrupted, con, args)
+    session_path = str(stand.log.path) if stand.log else None
+    if err is not None:
+        con.print(f"[bold red]tune failed:[/] {err}")
+        if args.json:
+            print(json.dumps({"error": str(err), "kills": stand.kills, "session": session_path}))
+        return 3
+    if args.json:
+        d = result.to_dict(session_path)
+        d["kills"] = stand.kills
+        print(json.dumps(d, indent=2))
+    else:
+        con.print(_summary_table([result]))
+        con.print(f"log: {session_path}")
+    return 0 if result.status in ("tuned", "applied", "verified") else 4
+
+
+def cmd_autotune(args, *, mock=None, port=None) -> int:
+    from agent.plan import PlanError, check_against_device, default_plan, load_plan
+    from agent.workflows import autotune
+    con = _console(args)
+    plan = None
+    if getattr(args, "plan", None):
+        try:
+            plan = load_plan(args.plan)
+        except PlanError as exc:
+            if mock is not None:
+                mock.stop()
+            raise UserError(str(exc)) from None
+    stand = _connect(port or args.port, args, mock=mock)
+    if plan is None:
+        plan = default_plan(stand.info.axes)
+    try:
+        check_against_device(plan, stand.info.axes)
+    except PlanError as exc:
+        stand.close("plan rejected")
+        raise UserError(str(exc)) from None
+    con.print(f"board [bold]{stand.info.device_id}[/] firmware {stand.info.firmware_version}, "
+              f"protocol {stand.info.protocol}, loop {stand.info.loop_rate_hz} Hz; "
+              f"{len(plan.loops)} loops: {', '.join(lp.key for lp in plan.loops)}")
+    box, interrupted = run_on_stand(args, stand, plan,
+                                    lambda s, p, stop: autotune(s, plan, p, stop), con)
+    result, err, outcome = _finish(stand, box, interrupted, con, args)
+    session_path = str(stand.log.path) if stand.log else None
+    report = None
+    if session_path and getattr(args, "report", True):
+        try:
+            from agent.logbook import report_session
+            report = str(report_session(session_path, Path(session_path) / "report.html"))
+        except Exception as exc:  # the run's result matters more than its report
+            con.print(f"[yellow]report not written: {exc}[/]")
+    if err is not None:
+        con.print(f"[bold red]autotune failed:[/] {err}")
+        if args.json:
+            print(json.dumps({"outcome": "error", "error": str(err), "session": session_path,
+                              "kills": stand.kills}))
+        return 3
+    if args.json:
+        d = result.to_dict()
+        d["report"] = report
+        print(json.dumps(d, indent=2))
+    else:
+        con.print(_summary_table(result.loops))
+        for c in result.cascade:
+            con.print(("[green]" if c["ok"] else "[yellow]") + c["message"] + "[/]")
+        con.print(f"outcome: [bold]{result.outcome}[/] {result.message}")
+        con.print(f"log:     {session_path}")
+        if report:
+            con.print(f"report:  {report}")
+    return {"ok": 0, "partial": 4, "killed": 5, "cancelled": 130}.get(result.outcome, 3)
+
+
+def cmd_demo(args) -> int:
+    from mock_device.runner import start_mock
+    from mock_device.scenarios import load_scenario
+    con = _console(args)
+    try:
+        scenario = load_scenario(args.scenario)
+    except (FileNotFoundError, KeyError, ValueError) as exc:
+        raise UserError(f"scenario {args.scenario!r}: {exc}") from None
+    speed = "max" if args.speed == "max" else float(args.speed)
+    mock = start_mock(scenario, transport="pty", speed=speed, seed=args.seed)
+    con.print(f"[bold]DEMO[/]: simulated board (invented stand '{scenario.name}') on "
+              f"{mock.port}, clock x{args.speed}. No hardware is driven.")
+    args.confirm_safe = True  # the demo drives a simulation; the cautions are still shown
+    args.port = mock.port
+    return cmd_autotune(args, mock=mock, port=mock.port)
+
+
+# ------------------------------------------------------------------------------ registration
+
+
+def _common(p, port=True):
+    if port:
+        p.add_argument("--port", required=True,
+                       help="serial device path or pyserial URL (socket://host:port)")
+    p.add_argument("--baud", type=int, default=921600, help="baud rate (default 921600)")
+    p.add_argument("--log-dir", default=None, help="log folder (default: $TETHERLOOP_LOG_DIR "
+                   "or the per-user data folder)")
+    p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
+    p.add_argument("--confirm-safe", action="store_true",
+                   help="confirm the safety cautions without a prompt (scripted runs; logged)")
+
+
+def register(sub) -> None:
+    p = sub.add_parser("ports", help="list serial ports")
+    p.add_argument("--json", action="store_true")
+    p.set_defaults(func=cmd_ports)
+
+    p = sub.add_parser("tune", help="tune one loop (relay experiment, identification, gains)")
+    _common(p)
+    p.add_argument("--axis", required=True, choices=("roll", "pitch", "yaw", "heave"))
+    p.add_argument("--loop", required=True, choices=("rate", "angle", "heave"))
+    p.add_argument("--controller", default="pid", choices=("pi", "pid", "pd"))
+    p.add_argument("--rule", default="recommended", help="tuning rule (default: recommended)")
+    p.add_argument("--ms", type=float, default=1.4, help="Ms target of the constrained design")
+    p.add_argument("--apply", action="store_true", help="write the chosen gains to the board")
+    p.add_argument("--verify", action="store_true",
+                   help="step-test the applied gains; roll back if it fails (implies --apply)")
+    p.set_defaults(func=cmd_tune)
+
+    p = sub.add_parser("autotune", help="tune the whole stand in cascade order from a plan")
+    _common(p)
+    p.add_argument("--plan", help="plan TOML (default: every loop the board offers)")
+    p.set_defaults(func=cmd_autotune)
+
+    p = sub.add_parser("demo", help="autotune the built-in simulated stand end to end")
+    _common(p, port=False)
+    p.add_argument("--scenario", default=DEFAULT_DEMO_SCENARIO,
+                   help=f"invented stand to simulate (default {DEFAULT_DEMO_SCENARIO}; "
+                   "`tetherloop mock --list`)")
+    p.add_argument("--speed", default="5", help="simulation clock: multiple of real time, or max")
+    p.add_argument("--seed", type=int, default=1)
+    p.add_argument("--plan", help="plan TOML (default: every loop the stand offers)")
+    p.set_defaults(func=cmd_demo)

@@ -1,0 +1,119 @@
+"""Relay supervision during an experiment: amplitude ramp, bias centring, convergence. Pure.
+
+The workflow feeds the samples received so far; ``RelaySupervisor.decide`` says what to do next:
+wait, adjust the relay (new amplitude and bias), stop because the oscillation has converged, or
+give up with a reason. Nothing here does I/O or reads a clock: time is the device's, from the
+telemetry.
+
+Ramp: a relay starts at a small amplitude so the first kick is gentle; each time a full period is
+seen after the last change, the amplitude is scaled by target/measured (bounded to x0.5..x2.5 per
+step and by the ceiling) until the oscillation amplitude is within the tolerance of the target.
+Bias: a relay on a loop with a load (gravity on heave, a centre-of-gravity offset) is centred on
+the trim when the mean relay output over a whole period equals its centre, so the bias is moved
+to that mean (for an integrating loop it is exactly the trim that holds the body still).
+Convergence: after the last change one period is discarded as transient; then the oscillation is
+converged once three consecutive periods agree within ``period_tol`` and ``amp_tol`` — at most
+four periods after the ramp when the loop is linear and quiet.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+
+@dataclass(frozen=True)
+class Decision:
+    action: str  # "wait" | "adjust" | "converged" | "fail"
+    amplitude: float
+    bias: float
+    reason: str = ""
+    window: tuple[int, int] | None = None  # sample index range of the converged periods
+    periods_after_ramp: int = 0
+    amplitude_seen: float = float("nan")
+    period_s: float = float("nan")
+
+
+@dataclass
+class RelaySupervisor:
+    amplitude: float
+    bias: float
+    target: float  # wanted oscillation amplitude of the measurement (half peak-to-peak)
+    ceiling: float  # highest relay amplitude allowed
+    amp_band: float = 0.3  # accept |a - target| <= amp_band * target
+    period_tol: float = 0.02
+    amp_tol: float = 0.05
+    settle_periods: int = 1
+    stable_periods: int = 3
+    max_periods_after_ramp: int = 10
+    bias_tol: float = 0.03  # re-centre when |mean u - bias| > bias_tol * amplitude
+    no_switch_s: float = 3.0  # fail when the relay has not switched for this long
+    _adjust_index: int = 0  # sample index of the last change
+    adjustments: int = 0
+
+    def decide(self, t_s: np.ndarray, y: np.ndarray, u: np.ndarray, relay: np.ndarray) -> Decision:
+        n = len(t_s)
+        if n < 3:
+            return Decision("wait", self.amplitude, self.bias)
+        start = self._adjust_index
+        rel = relay[start:]
+        rising = np.flatnonzero((rel[1:] > 0) & (rel[:-1] <= 0)) + 1 + start
+        switches = np.flatnonzero(np.diff(np.sign(rel)) != 0) + 1 + start
+        last_switch_t = t_s[switches[-1]] if len(switches) else t_s[start]
+        if t_s[-1] - last_switch_t > self.no_switch_s:
+            return Decision("fail", self.amplitude, self.bias,
+                            f"the relay did not switch for {t_s[-1] - last_switch_t:.1f} s: the "
+                            "loop does not oscillate (output too weak, axis blocked, or wrong "
+                            "sign)")
+        # whole periods since the last change, rising edge to rising edge
+        if len(rising) < self.settle_periods + 2:
+            return Decision("wait", self.amplitude, self.bias)
+        edges = rising[self.settle_periods:]
+        periods = np.diff(t_s[edges])
+        amps = np.array([(y[a:b].max() - y[a:b].min()) / 2 for a, b in zip(edges[:-1], edges[1:])])
+        a_last = float(amps[-1])
+        mean_u = float(np.mean(u[edges[-2]:edges[-1]]))
+        # ramp
+        lo, hi = (1 - self.amp_band) * self.target, (1 + self.amp_band) * self.target
+        at_ceiling = self.amplitude >= self.ceiling * 0.999
+        need_amp = (a_last < lo and not at_ceiling) or a_last > hi
+        need_bias = abs(mean_u - self.bias) > self.bias_tol * self.amplitude
+        if need_amp or need_bias:
+            new_amp = self.amplitude
+            if need_amp:
+                scale = float(np.clip(self.target / max(a_last, 1e-12), 0.5, 2.5))
+                new_amp = float(min(self.amplitude * scale, self.ceiling))
+            new_bias = mean_u if need_bias else self.bias
+            if self.adjustments >= 12:
+                return Decision("fail", self.amplitude, self.bias,
+                                "the relay amplitude and bias did not settle after 12 "
+                                "adjustments (the loop may be strongly nonlinear)")
+            self.amplitude, self.bias = new_amp, new_bias
+            self._adjust_index = n - 1
+            self.adjustments += 1
+            return Decision("adjust", new_amp, new_bias,
+                            "amplitude" if need_amp else "bias", amplitude_seen=a_last,
+                            period_s=float(periods[-1]))
+        # convergence over the last `stable_periods` periods
+        k = self.stable_periods
+        count = len(periods)
+        if count >= k:
+            p, a = periods[-k:], amps[-k:]
+            p_spread = (p.max() - p.min()) / p.mean()
+            a_spread = (a.max() - a.min()) / a.mean()
+            if p_spread <= self.period_tol and a_spread <= self.amp_tol:
+                return Decision("converged", self.amplitude, self.bias,
+                                window=(int(edges[-k - 1]), int(edges[-1])),
+                                periods_after_ramp=count + self.settle_periods,
+                                amplitude_seen=float(a.mean()), period_s=float(p.mean()))
+            if count + self.settle_periods >= self.max_periods_after_ramp:
+                return Decision("converged", self.amplitude, self.bias,
+                                f"not stationary after {count} periods (period spread "
+                                f"{p_spread:.1%}, amplitude spread {a_spread:.1%}); analysing "
+                                "the last ones anyway",
+                                window=(int(edges[-k - 1]), int(edges[-1])),
+                                periods_after_ramp=count + self.settle_periods,
+                                amplitude_seen=float(a.mean()), period_s=float(p.mean()))
+        return Decision("wait", self.amplitude, self.bias, amplitude_seen=a_last,
+                        period_s=float(periods[-1]))

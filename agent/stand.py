@@ -1,0 +1,277 @@
+"""The stand: one connected board with its link, session, safety monitor, recorder and log.
+
+``Stand`` is what every workflow, the CLI and the TUI hold. It wires the data flow once:
+telemetry -> (safety monitor, live buffer, experiment log, UI listeners) and events -> (session
+state, log, kill bookkeeping). Opening a stand identifies the board and discovers its settings;
+it never arms anything.
+"""
+
+from __future__ import annotations
+
+import threading
+import time
+from collections import deque
+from dataclasses import dataclass, field
+from typing import Any, Callable
+
+import numpy as np
+
+from protocol import messages as m
+from protocol.messages import DeviceState, EventKind, KillReason
+
+from . import __version__
+from .link import Link, LinkError
+from .safety import Limits, SafetyMonitor, Trip
+from .session import Session, SessionError
+
+
+class KillTripped(Exception):
+    """A kill happened (device or host); the workflow stopped. ``info`` says why."""
+
+    def __init__(self, info: dict):
+        self.info = info
+        super().__init__(f"KILL: {info.get('reason', 'unknown')}"
+                         + (f" — {info['axis_name']} value {info['value']:.4g} beyond "
+                            f"{info['threshold']:.4g}" if info.get("threshold") else "")
+                         + (f" ({info['text']})" if info.get("text") else ""))
+
+
+class Buffer:
+    """Samples of the running experiment (and a short live history for the UI). Appends come
+    from the reader thread; ``arrays`` snapshots under a lock."""
+
+    COLUMNS = ("host_time_s", "time_us", "state", "tag", "axis", "loop", "setpoint",
+               "measurement", "output", "relay")
+
+    def __init__(self, live_len: int = 4000):
+        self._lock = threading.Lock()
+        self._rows: list[tuple] = []
+        self.recording = False
+        self.live: deque = deque(maxlen=live_len)  # (host_t, Telemetry) for plots
+
+    def start(self) -> None:
+        with self._lock:
+            self._rows = []
+            self.recording = True
+
+    def stop(self) -> None:
+        with self._lock:
+            self.recording = False
+
+    def add(self, host_t: float, tel: m.Telemetry) -> None:
+        self.live.append((host_t, tel))
+        if not self.recording:
+            return
+        rows = [(host_t, tel.time_us, tel.state, tel.tag, s.axis, s.loop, s.setpoint,
+                 s.measurement, s.output, s.relay) for s in tel.axes]
+        with self._lock:
+            self._rows.extend(rows)
+
+    def axis(self, axis: int) -> dict[str, np.ndarray]:
+        with self._lock:
+            rows = [r for r in self._rows if r[4] == axis]
+        if not rows:
+            return {c: np.empty(0) for c in self.COLUMNS}
+        arr = np.array(rows, dtype=float)
+        return {c: arr[:, i] for i, c in enumerate(self.COLUMNS)}
+
+    def columns(self) -> dict[str, np.ndarray]:
+        with self._lock:
+            rows = list(self._rows)
+        if not rows:
+            return {c: np.empty(0) for c in self.COLUMNS}
+        arr = np.array(rows, dtype=float)
+        return {c: arr[:, i] for i, c in enumerate(self.COLUMNS)}
+
+
+@dataclass
+class Stand:
+    session: Session
+    log: Any = None  # agent.logbook.SessionLog or None
+    monitor: SafetyMonitor | None = None
+    buffer: Buffer = field(default_factory=Buffer)
+    experiment_log: Any = None
+    listeners: list = field(default_factory=list)  # UI: fn(kind, payload)
+    kills: list = field(default_factory=list)
+    mock: Any = None  # MockHandle when the stand is the built-in simulation
+    confirmed: bool = False
+    _kill_event: threading.Event = field(default_factory=threading.Event)
+    _closed: bool = False
+
+    # ------------------------------------------------------------------ construction
+    @classmethod
+    def connect(cls, port: str | Any, *, baudrate: int = 921600, limits: Limits | None = None,
+                mock: Any = None) -> "Stand":
+        link = Link(port, baudrate=baudrate)
+        session = Session(link)
+        try:
+            session.connect()
+        except Exception:
+            link.close()
+            raise
+        stand = cls(session=session, mock=mock)
+        stand.monitor = SafetyMonitor(kill=session.kill, limits=limits or Limits())
+        stand.monitor.on_trip.append(stand._on_host_trip)
+        link.on_telemetry(stand._on_telemetry)
+        link.on_event(stand._on_event)
+        link.on_lost(stand._on_lost)
+        return stand
+
+    @property
+    def link(self) -> Link:
+        return self.session.link
+
+    @property
+    def info(self):
+        return self.session.info
+
+    @property
+    def state(self) -> DeviceState:
+        return self.session.state
+
+    def emit(self, kind: str, payload: Any) -> None:
+        for fn in tuple(self.listeners):
+            try:
+                fn(kind, payload)
+            except Exception:
+                pass
+
+    def open_log(self, logbook, plan_dict: dict, confirmations: dict | None = None,
+                 name: str | None = None):
+        """Open the session log (before anything is armed: disk problems stop us here)."""
+        self.log = logbook.open_session(
+            device=self.info.as_dict(), settings_before=dict(self.session.values),
+            plan=plan_dict, tool_version=__version__, protocol_version=self.info.protocol,
+            name=name, confirmations=confirmations or {})
+        return self.log
+
+    def log_event(self, kind: str, **fields) -> None:
+        if self.log is not None:
+            try:
+                self.log.event(kind, host_time_s=time.time(), **fields)
+            except Exception as exc:  # a full disk must not stop a kill; say it once
+                self.emit("warning", f"log write failed: {exc}")
+
+    # ------------------------------------------------------------------ data flow
+    def _on_telemetry(self, host_t: float, tel: m.Telemetry) -> None:
+        if self.monitor is not None:
+            self.monitor.check(host_t, tel)
+        self.buffer.add(host_t, tel)
+        exp = self.experiment_log
+        if exp is not None:
+            try:
+                exp.append(host_t, tel)
+            except Exception as exc:
+                self.experiment_log = None
+                self.emit("warning", f"telemetry log write failed: {exc}")
+        self.emit("telemetry", tel)
+
+    def _on_event(self, host_t: float, ev: m.Event) -> None:
+        fields = {"device_time_us": ev.time_us, "event": EventKind(ev.kind).name.lower()
+                  if ev.kind in EventKind._value2member_map_ else ev.kind,
+                  "state": ev.state, "reason": ev.reason, "axis": ev.axis, "value": ev.value,
+                  "threshold": ev.threshold, "tag": ev.tag, "text": ev.text}
+        if ev.kind == EventKind.KILL_TRIPPED:
+            info = self._kill_info(ev.reason, ev.axis, ev.value, ev.threshold, ev.text, "device")
+            self.kills.append(info)
+            self._kill_event.set()
+            if self.monitor is not None:
+                self.monitor.active = False
+            self.log_event("kill", **info, device_time_us=ev.time_us)
+            self.emit("kill", info)
+        else:
+            self.log_event("device_event", **fields)
+        self.emit("event", ev)
+
+    def _on_host_trip(self, trip: Trip) -> None:
+        info = self._kill_info(trip.reason, trip.axis, trip.value, trip.threshold, "", "host")
+        info["latency_ms"] = trip.latency_ms
+        self.kills.append(info)
+        self._kill_event.set()
+        self.log_event("kill", **info)
+        self.emit("kill", info)
+
+    def _on_lost(self, reason: str) -> None:
+        info = self._kill_info(KillReason.HOST_LINK, 255, 0.0, 0.0, reason, "host")
+        self.kills.append(info)
+        self._kill_event.set()
+        self.log_event("kill", **info)
+        self.emit("kill", info)
+
+    @staticmethod
+    def _kill_info(reason, axis, value, threshold, text, origin) -> dict:
+        try:
+            rname = KillReason(reason).name.lower()
+        except ValueError:
+            rname = f"reason {reason}"
+        try:
+            aname = m.Axis(axis).name.lower()
+        except ValueError:
+            aname = "-"
+        return {"origin": origin, "reason": rname, "axis": int(axis), "axis_name": aname,
+                "value": float(value), "threshold": float(threshold), "text": text,
+                "host_time_s": time.time()}
+
+    # ------------------------------------------------------------------ kill and arm
+    def kill(self, reason: int = KillReason.HOST_OPERATOR, value: float = 0.0) -> None:
+        """Kill now, from any thread, in any state (operator key, Ctrl-C, errors)."""
+        if self.monitor is not None:
+            self.monitor.trip(reason, time.monotonic(), value=value)
+        else:
+            try:
+                self.session.kill(reason, value)
+            finally:
+                self._kill_event.set()
+
+    @property
+    def killed(self) -> bool:
+        return self._kill_event.is_set() or self.session.state == DeviceState.KILLED
+
+    def check_kill(self) -> None:
+        if self.killed:
+            info = self.kills[-1] if self.kills else {"reason": "device reports KILLED"}
+            raise KillTripped(info)
+
+    def clear_kill(self) -> None:
+        self.session.clear_kill()
+        self._kill_event.clear()
+        self.log_event("kill_cleared")
+
+    def arm(self) -> None:
+        if not self.confirmed:
+            raise SessionError("the safety cautions have not been confirmed for this session")
+        self.check_kill()
+        self.session.arm(operator_confirmed=True)
+        if self.monitor is not None:
+            self.monitor.active = False
+        self.log_event("armed")
+        self.emit("state", "armed")
+
+    def disarm(self) -> None:
+        if self.monitor is not None:
+            self.monitor.active = False
+        try:
+            self.session.disarm()
+        finally:
+            self.log_event("disarmed")
+            self.emit("state", "disarmed")
+
+    def close(self, outcome: str = "closed") -> None:
+        if self._closed:
+            return
+        self._closed = True
+        try:
+            if self.state in (DeviceState.ARMED, DeviceState.RUNNING) and self.link.lost_reason is None:
+                self.session.disarm()
+        except Exception:
+            pass
+        if self.log is not None:
+            try:
+                self.log.update_manifest(settings_after=dict(self.session.values),
+                                         link_stats=self.link.stats.as_dict())
+                self.log.close(outcome)
+            except Exception:
+                pass
+        self.session.close()
+        if self.mock is not None:
+            self.mock.stop()
