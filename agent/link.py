@@ -6,8 +6,9 @@ The link owns the only threads of the host side's I/O edge:
   dispatches frames: replies (FLAG_REPLY) complete the pending request with the same sequence
   number; Telemetry and Event frames go to subscribers (called on the reader thread: keep them
   short and never block);
-* a keepalive thread that sends ``Keepalive`` whenever nothing else went out for
-  ``keepalive_s``, so the device's watchdog stays fresh while the host lives.
+* a keepalive thread that sends ``Keepalive`` every ``keepalive_s``, whatever else is going out,
+  so the device's watchdog stays fresh while the host lives (a device may require a recent
+  Keepalive itself, not just any frame, before it arms: proof that this thread runs).
 
 Requests are numbered; a request whose reply does not come within ``timeout_s`` is resent
 unchanged (same sequence number) with FLAG_RETRY, so the device answers from its reply cache and
@@ -231,14 +232,15 @@ class Link:
 
     # -------------------------------------------------------------- threads
     def _keepalive_loop(self) -> None:
-        while not self._stop.wait(self.keepalive_s / 2):
+        while True:
             if self.lost_reason is not None:
                 return
-            if self.clock() - self._last_tx >= self.keepalive_s:
-                try:
-                    self.send(Keepalive(host_time_ms=int(self.clock() * 1000) & 0xFFFFFFFF))
-                except LinkError:
-                    return
+            try:
+                self.send(Keepalive(host_time_ms=int(self.clock() * 1000) & 0xFFFFFFFF))
+            except LinkError:
+                return
+            if self._stop.wait(self.keepalive_s):
+                return
 
     def _read_loop(self) -> None:
         ser = self._ser

@@ -66,54 +66,54 @@ class RelaySupervisor:
                             f"the relay did not switch for {t_s[-1] - last_switch_t:.1f} s: the "
                             "loop does not oscillate (output too weak, axis blocked, or wrong "
                             "sign)")
-        # whole periods since the last change, rising edge to rising edge
+        # whole periods since the last change, rising edge to rising edge, judged in order so
+        # that the verdict does not depend on how often the caller polls
         if len(rising) < self.settle_periods + 2:
             return Decision("wait", self.amplitude, self.bias)
         edges = rising[self.settle_periods:]
         periods = np.diff(t_s[edges])
         amps = np.array([(y[a:b].max() - y[a:b].min()) / 2 for a, b in zip(edges[:-1], edges[1:])])
-        a_last = float(amps[-1])
-        mean_u = float(np.mean(u[edges[-2]:edges[-1]]))
-        # ramp
         lo, hi = (1 - self.amp_band) * self.target, (1 + self.amp_band) * self.target
         at_ceiling = self.amplitude >= self.ceiling * 0.999
-        need_amp = (a_last < lo and not at_ceiling) or a_last > hi
-        need_bias = abs(mean_u - self.bias) > self.bias_tol * self.amplitude
-        if need_amp or need_bias:
-            new_amp = self.amplitude
-            if need_amp:
-                scale = float(np.clip(self.target / max(a_last, 1e-12), 0.5, 2.5))
-                new_amp = float(min(self.amplitude * scale, self.ceiling))
-            new_bias = mean_u if need_bias else self.bias
-            if self.adjustments >= 12:
-                return Decision("fail", self.amplitude, self.bias,
-                                "the relay amplitude and bias did not settle after 12 "
-                                "adjustments (the loop may be strongly nonlinear)")
-            self.amplitude, self.bias = new_amp, new_bias
-            self._adjust_index = n - 1
-            self.adjustments += 1
-            return Decision("adjust", new_amp, new_bias,
-                            "amplitude" if need_amp else "bias", amplitude_seen=a_last,
-                            period_s=float(periods[-1]))
-        # convergence over the last `stable_periods` periods
         k = self.stable_periods
-        count = len(periods)
-        if count >= k:
-            p, a = periods[-k:], amps[-k:]
-            p_spread = (p.max() - p.min()) / p.mean()
-            a_spread = (a.max() - a.min()) / a.mean()
-            if p_spread <= self.period_tol and a_spread <= self.amp_tol:
-                return Decision("converged", self.amplitude, self.bias,
-                                window=(int(edges[-k - 1]), int(edges[-1])),
-                                periods_after_ramp=count + self.settle_periods,
-                                amplitude_seen=float(a.mean()), period_s=float(p.mean()))
-            if count + self.settle_periods >= self.max_periods_after_ramp:
-                return Decision("converged", self.amplitude, self.bias,
-                                f"not stationary after {count} periods (period spread "
-                                f"{p_spread:.1%}, amplitude spread {a_spread:.1%}); analysing "
-                                "the last ones anyway",
-                                window=(int(edges[-k - 1]), int(edges[-1])),
-                                periods_after_ramp=count + self.settle_periods,
-                                amplitude_seen=float(a.mean()), period_s=float(p.mean()))
-        return Decision("wait", self.amplitude, self.bias, amplitude_seen=a_last,
+        for j in range(len(periods)):
+            a_j = float(amps[j])
+            mean_u = float(np.mean(u[edges[j]:edges[j + 1]]))
+            need_amp = (a_j < lo and not at_ceiling) or a_j > hi
+            need_bias = abs(mean_u - self.bias) > self.bias_tol * self.amplitude
+            if need_amp or need_bias:
+                return self._adjust(n, need_amp, need_bias, a_j, mean_u, float(periods[j]))
+            if j + 1 >= k:
+                p, a = periods[j + 1 - k:j + 1], amps[j + 1 - k:j + 1]
+                p_spread = (p.max() - p.min()) / p.mean()
+                a_spread = (a.max() - a.min()) / a.mean()
+                stable = p_spread <= self.period_tol and a_spread <= self.amp_tol
+                last_chance = j + 1 + self.settle_periods >= self.max_periods_after_ramp
+                if stable or last_chance:
+                    note = "" if stable else (
+                        f"not stationary after {j + 1} periods (period spread {p_spread:.1%}, "
+                        f"amplitude spread {a_spread:.1%}); analysing the last ones anyway")
+                    return Decision("converged", self.amplitude, self.bias, note,
+                                    window=(int(edges[j + 1 - k]), int(edges[j + 1])),
+                                    periods_after_ramp=j + 1 + self.settle_periods,
+                                    amplitude_seen=float(a.mean()), period_s=float(p.mean()))
+        return Decision("wait", self.amplitude, self.bias, amplitude_seen=float(amps[-1]),
                         period_s=float(periods[-1]))
+
+    def _adjust(self, n: int, need_amp: bool, need_bias: bool, a_seen: float, mean_u: float,
+                period_s: float) -> Decision:
+        if self.adjustments >= 12:
+            return Decision("fail", self.amplitude, self.bias,
+                            "the relay amplitude and bias did not settle after 12 adjustments "
+                            "(the loop may be strongly nonlinear)")
+        new_amp = self.amplitude
+        if need_amp:
+            scale = float(np.clip(self.target / max(a_seen, 1e-12), 0.5, 2.5))
+            new_amp = float(min(self.amplitude * scale, self.ceiling))
+        new_bias = mean_u if need_bias else self.bias
+        self.amplitude, self.bias = new_amp, new_bias
+        self._adjust_index = n - 1
+        self.adjustments += 1
+        return Decision("adjust", new_amp, new_bias,
+                        " and ".join(w for w, f in (("amplitude", need_amp), ("bias", need_bias))
+                                     if f), amplitude_seen=a_seen, period_s=period_s)

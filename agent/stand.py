@@ -38,20 +38,25 @@ class KillTripped(Exception):
 
 class Buffer:
     """Samples of the running experiment (and a short live history for the UI). Appends come
-    from the reader thread; ``arrays`` snapshots under a lock."""
+    from the reader thread; ``axis``/``columns`` convert only the rows added since the last call
+    into a growing numpy array, so polling a long experiment stays cheap."""
 
     COLUMNS = ("host_time_s", "time_us", "state", "tag", "axis", "loop", "setpoint",
                "measurement", "output", "relay")
 
     def __init__(self, live_len: int = 4000):
         self._lock = threading.Lock()
-        self._rows: list[tuple] = []
+        self._pending: list[tuple] = []
+        self._arr = np.empty((0, len(self.COLUMNS)))
+        self._n = 0
         self.recording = False
         self.live: deque = deque(maxlen=live_len)  # (host_t, Telemetry) for plots
 
     def start(self) -> None:
         with self._lock:
-            self._rows = []
+            self._pending = []
+            self._arr = np.empty((4096, len(self.COLUMNS)))
+            self._n = 0
             self.recording = True
 
     def stop(self) -> None:
@@ -65,22 +70,29 @@ class Buffer:
         rows = [(host_t, tel.time_us, tel.state, tel.tag, s.axis, s.loop, s.setpoint,
                  s.measurement, s.output, s.relay) for s in tel.axes]
         with self._lock:
-            self._rows.extend(rows)
+            self._pending.extend(rows)
+
+    def _snapshot(self) -> np.ndarray:
+        with self._lock:
+            new, self._pending = self._pending, []
+            if new:
+                block = np.array(new, dtype=float)
+                need = self._n + len(block)
+                if need > len(self._arr):
+                    grown = np.empty((max(need, 2 * len(self._arr)), len(self.COLUMNS)))
+                    grown[:self._n] = self._arr[:self._n]
+                    self._arr = grown
+                self._arr[self._n:need] = block
+                self._n = need
+            return self._arr[:self._n].copy()
 
     def axis(self, axis: int) -> dict[str, np.ndarray]:
-        with self._lock:
-            rows = [r for r in self._rows if r[4] == axis]
-        if not rows:
-            return {c: np.empty(0) for c in self.COLUMNS}
-        arr = np.array(rows, dtype=float)
+        arr = self._snapshot()
+        arr = arr[arr[:, 4] == axis]
         return {c: arr[:, i] for i, c in enumerate(self.COLUMNS)}
 
     def columns(self) -> dict[str, np.ndarray]:
-        with self._lock:
-            rows = list(self._rows)
-        if not rows:
-            return {c: np.empty(0) for c in self.COLUMNS}
-        arr = np.array(rows, dtype=float)
+        arr = self._snapshot()
         return {c: arr[:, i] for i, c in enumerate(self.COLUMNS)}
 
 

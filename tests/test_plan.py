@@ -1,0 +1,79 @@
+"""Plan files: validation with clear messages, cascade order."""
+
+import math
+
+import pytest
+
+from agent.plan import PlanError, check_against_device, load_plan, plan_from_dict
+
+
+def write(tmp_path, text):
+    p = tmp_path / "plan.toml"
+    p.write_text(text)
+    return p
+
+
+def test_cascade_order_is_enforced_whatever_the_file_order(tmp_path):
+    # common practice, no source: inner (rate) loops are tuned before the loops around them
+    p = write(tmp_path, """
+[[loop]]
+axis = "heave"
+loop = "heave"
+[[loop]]
+axis = "roll"
+loop = "angle"
+[[loop]]
+axis = "heave"
+loop = "rate"
+[[loop]]
+axis = "pitch"
+loop = "rate"
+[[loop]]
+axis = "roll"
+loop = "rate"
+""")
+    plan = load_plan(p)
+    assert [lp.key for lp in plan.loops] == ["roll.rate", "pitch.rate", "roll.angle",
+                                             "heave.rate", "heave.heave"]
+
+
+def test_limits_are_converted_to_si(tmp_path):
+    plan = load_plan(write(tmp_path, """
+[limits]
+angle_deg = 20
+rate_deg_s = 300
+[[loop]]
+axis = "roll"
+loop = "rate"
+"""))
+    assert plan.limits.angle_rad == pytest.approx(math.radians(20))
+    assert plan.limits.rate_rad_s == pytest.approx(math.radians(300))
+
+
+@pytest.mark.parametrize("text, needle", [
+    ('[[loop]]\naxis = "rol"\nloop = "rate"\n', "axis = 'rol' is not known"),
+    ('[[loop]]\naxis = "roll"\nloop = "heave"\n', "has no 'heave' loop"),
+    ('[[loop]]\naxis = "heave"\nloop = "angle"\n', "has no 'angle' loop"),
+    ('[limits]\nangle_deg = 400\n[[loop]]\naxis = "roll"\nloop = "rate"\n', "out of range"),
+    ('[limits]\nangel_deg = 4\n[[loop]]\naxis = "roll"\nloop = "rate"\n', "unknown key 'angel_deg'"),
+    ('[stand]\ncontroller = "pidd"\n[[loop]]\naxis = "roll"\nloop = "rate"\n', "pidd"),
+    ('[stand]\nms_target = 0.5\n[[loop]]\naxis = "roll"\nloop = "rate"\n', "ms_target"),
+    ('[stand]\n', "no [[loop]] entries"),
+    ('[[loop]]\naxis = "roll"\nloop = "rate"\n[[loop]]\naxis = "roll"\nloop = "rate"\n', "twice"),
+    ('this is = = not toml', "not valid TOML"),
+])
+def test_bad_plans_give_clear_errors(tmp_path, text, needle):
+    with pytest.raises(PlanError) as err:
+        load_plan(write(tmp_path, text))
+    assert needle in str(err.value)
+
+
+def test_missing_plan_file(tmp_path):
+    with pytest.raises(PlanError, match="does not exist"):
+        load_plan(tmp_path / "nope.toml")
+
+
+def test_plan_against_device_axes():
+    plan = plan_from_dict({"loop": [{"axis": "heave", "loop": "rate"}]})
+    with pytest.raises(PlanError, match="no 'heave' axis"):
+        check_against_device(plan, {"roll": ("rate", "angle")})
