@@ -27,8 +27,16 @@ from typing import Any, Callable
 import serial
 
 from protocol import codec
-from protocol.messages import (FLAG_REPLY, FLAG_RETRY, Event, Keepalive, Kill, Refuse,
-                               Telemetry)
+from protocol.messages import (FLAG_REPLY, FLAG_RETRY, PROTOCOL_MAJOR, Event, Keepalive, Kill,
+                               Refuse, Telemetry)
+
+
+@dataclass(frozen=True)
+class ForeignVersion:
+    """A reply in a protocol major version this host does not speak."""
+
+    major: int
+    minor: int
 
 
 class LinkError(Exception):
@@ -46,6 +54,7 @@ class LinkStats:
     bad_frames: int = 0
     retries: int = 0
     timeouts: int = 0
+    foreign_version: int = 0
     telemetry: int = 0
     events: int = 0
     bytes_in: int = 0
@@ -266,6 +275,9 @@ class Link:
         if msg is None:
             return
         self.stats.frames_in += 1
+        if frame.major != PROTOCOL_MAJOR:
+            self.stats.foreign_version += 1
+            msg = ForeignVersion(frame.major, frame.minor)
         if frame.flags & FLAG_REPLY:
             pend = self._pending.get(frame.seq)
             if pend is not None and not pend.event.is_set():

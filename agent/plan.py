@@ -54,8 +54,11 @@ _LIMIT_RANGES = {  # key: (low, high, unit text) — operator units
 
 def known_rules() -> tuple[str, ...]:
     """Names of the tuning rules the analysis offers (late import keeps plan loading light)."""
-    from . import analysis
-    return tuple(analysis.RULE_NAMES)
+    from .analysis.tuning import RULES
+    names: list[str] = []
+    for per_controller in RULES.values():
+        names += [r for r in per_controller if r not in names]
+    return tuple(names)
 
 
 class PlanError(ValueError):

@@ -16,7 +16,7 @@ from protocol.messages import (Axis, DeviceState, Loop, PROTOCOL_MAJOR, PROTOCOL
                                RefuseCode)
 
 from . import __version__
-from .link import Link, LinkError
+from .link import ForeignVersion, Link, LinkError
 
 
 class SessionError(Exception):
@@ -122,6 +122,11 @@ class Session:
                                       timeout_s=0.5, retries=3)
         except LinkError as exc:
             raise SessionError(f"nothing answered on {self.link.port_name}: {exc}") from None
+        if isinstance(reply, ForeignVersion):
+            raise SessionError(
+                f"the board answers in protocol {reply.major}.{reply.minor}; this tetherloop "
+                f"speaks {PROTOCOL_MAJOR}.{PROTOCOL_MINOR}. Major versions must match: update "
+                "the tool or the firmware.")
         if isinstance(reply, m.Refuse):
             if reply.code == RefuseCode.VERSION:
                 raise SessionError(

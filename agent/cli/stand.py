@@ -298,6 +298,56 @@ def cmd_demo(args) -> int:
     return cmd_autotune(args, mock=mock, port=mock.port)
 
 
+# ------------------------------------------------------------------------------ settings
+
+
+def _parse_assignments(items) -> dict[str, float]:
+    out = {}
+    for item in items or []:
+        name, sep, value = item.partition("=")
+        if not sep or not name:
+            raise UserError(f"--set {item!r}: expected NAME=VALUE, e.g. roll.rate.kp=0.2")
+        try:
+            out[name.strip()] = float(value)
+        except ValueError:
+            raise UserError(f"--set {item!r}: {value!r} is not a number") from None
+    return out
+
+
+def cmd_settings(args) -> int:
+    """Show the board's settings table; with --set, write values (all checked first)."""
+    from agent.session import SessionError
+    con = _console(args)
+    values = _parse_assignments(args.set)  # bad syntax: error before connecting
+    stand = _connect(args.port, args)
+    try:
+        try:
+            for name, value in values.items():
+                stand.session.setting(name).check(value)
+            written = stand.session.write_many(values) if values else {}
+        except SessionError as exc:
+            raise UserError(str(exc)) from None
+        if args.json:
+            print(json.dumps({"written": written, "settings": [
+                {"name": s.name, "id": s.setting_id, "unit": s.unit, "min": s.minimum,
+                 "max": s.maximum, "default": s.default, "value": stand.session.values.get(n)}
+                for n, s in stand.session.settings.items()]}, indent=2))
+        else:
+            t = Table("setting", "value", "unit", "min", "max", "default",
+                      title=f"{stand.info.device_id} settings")
+            for n, s in stand.session.settings.items():
+                if args.filter and args.filter not in n:
+                    continue
+                t.add_row(n, _g(stand.session.values.get(n)), s.unit, _g(s.minimum),
+                          _g(s.maximum), _g(s.default))
+            con.print(t)
+            for n, v in written.items():
+                con.print(f"wrote {n} = {v:.6g}")
+    finally:
+        stand.close("settings")
+    return 0
+
+
 # ------------------------------------------------------------------------------ registration
 
 
@@ -317,6 +367,15 @@ def register(sub) -> None:
     p = sub.add_parser("ports", help="list serial ports")
     p.add_argument("--json", action="store_true")
     p.set_defaults(func=cmd_ports)
+
+    p = sub.add_parser("settings", help="show the board's settings; --set NAME=VALUE writes")
+    p.add_argument("--port", required=True, help="serial device path or pyserial URL")
+    p.add_argument("--baud", type=int, default=921600)
+    p.add_argument("--set", action="append", metavar="NAME=VALUE",
+                   help="write a setting (repeatable; every value is checked before any write)")
+    p.add_argument("--filter", default="", help="show only settings whose name contains this")
+    p.add_argument("--json", action="store_true")
+    p.set_defaults(func=cmd_settings)
 
     p = sub.add_parser("tune", help="tune one loop (relay experiment, identification, gains)")
     _common(p)
