@@ -224,6 +224,20 @@ def _configure_telemetry(stand: Stand, lp: LoopPlan) -> None:
     stand.session.telemetry(rate, axes, loop_i)
 
 
+IDLE_TELEMETRY_HZ = 50
+
+
+def _idle_telemetry(stand: Stand, lp: LoopPlan) -> None:
+    """Between experiments a slow stream is enough for the live view; it also leaves the host
+    CPU to the analysis instead of decoding telemetry nobody records."""
+    try:
+        if stand.link.lost_reason is None:
+            axes = [int(Axis[a.upper()]) for a in stand.info.axes]
+            stand.session.telemetry(IDLE_TELEMETRY_HZ, axes, _ids(lp)[1])
+    except (SessionError, LinkError):
+        pass
+
+
 def _stop_quietly(stand: Stand, tag: int) -> None:
     try:
         if stand.link.lost_reason is None:
@@ -262,6 +276,7 @@ def noise_check(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = _
     finally:
         _stop_quietly(stand, tag)
         stand.buffer.stop()
+    stand.check_kill()
     cols = stand.buffer.axis(axis_i)
     y = cols["measurement"][cols["loop"] == loop_i]
     u = cols["output"][cols["loop"] == loop_i]
@@ -355,6 +370,8 @@ def relay_experiment(stand: Stand, lp: LoopPlan, plan: Plan, *, trim: float, hys
             stand.monitor.active = False
         _stop_quietly(stand, tag)
         stand.buffer.stop()
+        _idle_telemetry(stand, lp)
+    stand.check_kill()
     cols = stand.buffer.columns()
     sel_axis = (cols["axis"] == axis_i) & (cols["loop"] == loop_i)
     t_axis = cols["time_us"][sel_axis]
@@ -428,16 +445,23 @@ def apply_gains(stand: Stand, gains: dict[str, float], progress: ProgressFn = _q
 
 
 def verify_step(stand: Stand, lp: LoopPlan, plan: Plan, cand, *, setpoint: float,
-                progress: ProgressFn = _quiet, stop: threading.Event | None = None,
-                exp_id: str | None = None) -> dict:
-    """Step test with the applied gains; measured metrics beside the prediction."""
+                step: float | None = None, progress: ProgressFn = _quiet,
+                stop: threading.Event | None = None, exp_id: str | None = None) -> dict:
+    """Step test with the applied gains; measured metrics beside the prediction.
+
+    The step size defaults to the oscillation amplitude the relay reached (a size the loop has
+    just shown it handles within the limits), capped at the relay target; a rate step also
+    integrates into an angle, so it is kept small enough for that angle to stay within half the
+    angle limit over the test."""
     axis_i, loop_i = _ids(lp)
     threshold = _threshold(stand, lp, plan.limits)
-    step = plan.relay_target * threshold
+    step = plan.relay_target * threshold if step is None else min(step, plan.relay_target * threshold)
     pred = cand.predicted
     settle = pred.settling_s if math.isfinite(pred.settling_s) else 10 * max(pred.rise_s, 0.01)
     step_at = max(0.1, 0.2 * settle)
     duration = min(step_at + max(3.0 * settle, 5 * pred.rise_s), plan.max_experiment_s)
+    if lp.loop == "rate" and lp.axis != "heave":
+        step = min(step, 0.5 * plan.limits.angle_rad / max(duration - step_at, 1e-3))
     exp_id = exp_id or f"{lp.axis}-{lp.loop}-verify"
     exp = _start_experiment_log(stand, exp_id, _meta(stand, lp, "step", amplitude=step,
                                                      setpoint=setpoint, step_at_s=step_at,
@@ -459,6 +483,8 @@ def verify_step(stand: Stand, lp: LoopPlan, plan: Plan, cand, *, setpoint: float
             stand.monitor.active = False
         _stop_quietly(stand, tag)
         stand.buffer.stop()
+        _idle_telemetry(stand, lp)
+    stand.check_kill()
     cols = stand.buffer.axis(axis_i)
     sel = cols["loop"] == loop_i
     t = (cols["time_us"][sel] - cols["time_us"][sel][0]) * 1e-6
@@ -555,6 +581,7 @@ def tune_loop(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = _qu
         return res
     try:
         res.verification = verify_step(stand, lp, plan, res.chosen, setpoint=noise["setpoint"],
+                                       step=res.relay.get("amplitude_seen"),
                                        progress=progress, stop=stop)
         res.experiments.append(res.verification["experiment"])
     except KillTripped as exc:
@@ -610,6 +637,7 @@ def autotune(stand: Stand, plan: Plan, progress: ProgressFn = _quiet,
             result.loops.append(lr)
             stand.emit("loop", {"key": lp.key, "status": lr.status})
             stand.log_event("loop_done", loop=lp.key, status=lr.status, message=lr.message)
+            stand.check_kill()
         result.cascade = cascade_checks(result.loops)
         for c in result.cascade:
             progress(Progress("info", c["message"]))
