@@ -10,7 +10,9 @@ seen after the last change, the amplitude is scaled by target/measured (bounded 
 step and by the ceiling) until the oscillation amplitude is within the tolerance of the target.
 Bias: a relay on a loop with a load (gravity on heave, a centre-of-gravity offset) is centred on
 the trim when the mean relay output over a whole period equals its centre, so the bias is moved
-to that mean (for an integrating loop it is exactly the trim that holds the body still).
+to that mean (for an integrating loop it is exactly the trim that holds the body still) — the
+whole way for a large offset, half-way for a small one, at most ``max_bias_moves`` times, since
+noise on the switching instants makes one period's mean noisy.
 Convergence: after the last change one period is discarded as transient; then the oscillation is
 converged once three consecutive periods agree within ``period_tol`` and ``amp_tol`` — at most
 four periods after the ramp when the loop is linear and quiet.
@@ -47,10 +49,12 @@ class RelaySupervisor:
     settle_periods: int = 1
     stable_periods: int = 3
     max_periods_after_ramp: int = 10
-    bias_tol: float = 0.03  # re-centre when |mean u - bias| > bias_tol * amplitude
+    bias_tol: float = 0.08  # re-centre when |mean u - bias| > bias_tol * amplitude
+    max_bias_moves: int = 4  # after this many re-centrings the bias is left alone
     no_switch_s: float = 3.0  # fail when the relay has not switched for this long
     _adjust_index: int = 0  # sample index of the last change
     adjustments: int = 0
+    bias_moves: int = 0
 
     def decide(self, t_s: np.ndarray, y: np.ndarray, u: np.ndarray, relay: np.ndarray) -> Decision:
         n = len(t_s)
@@ -78,11 +82,16 @@ class RelaySupervisor:
         k = self.stable_periods
         for j in range(len(periods)):
             a_j = float(amps[j])
-            mean_u = float(np.mean(u[edges[j]:edges[j + 1]]))
             need_amp = (a_j < lo and not at_ceiling) or a_j > hi
-            need_bias = abs(mean_u - self.bias) > self.bias_tol * self.amplitude
-            if need_amp or need_bias:
-                return self._adjust(n, need_amp, need_bias, a_j, mean_u, float(periods[j]))
+            if need_amp:
+                return self._adjust(n, True, False, a_j, self.bias, float(periods[j]))
+            if j >= 1 and self.bias_moves < self.max_bias_moves:
+                # bias from the mean over the last two whole periods (one period's mean is
+                # noisy when noise moves the switching instants; after an amplitude change
+                # the first periods are still settling)
+                mean_u = float(np.mean(u[edges[j - 1]:edges[j + 1]]))
+                if abs(mean_u - self.bias) > self.bias_tol * self.amplitude:
+                    return self._adjust(n, False, True, a_j, mean_u, float(periods[j]))
             if j + 1 >= k:
                 p, a = periods[j + 1 - k:j + 1], amps[j + 1 - k:j + 1]
                 p_spread = (p.max() - p.min()) / p.mean()
@@ -110,7 +119,13 @@ class RelaySupervisor:
         if need_amp:
             scale = float(np.clip(self.target / max(a_seen, 1e-12), 0.5, 2.5))
             new_amp = float(min(self.amplitude * scale, self.ceiling))
-        new_bias = mean_u if need_bias else self.bias
+        new_bias = self.bias
+        if need_bias:
+            # one period's mean is noisy when noise moves the switching instants: take the whole
+            # step only for a large offset, half of it otherwise
+            gap = mean_u - self.bias
+            new_bias = mean_u if abs(gap) > 0.25 * self.amplitude else self.bias + 0.5 * gap
+            self.bias_moves += 1
         self.amplitude, self.bias = new_amp, new_bias
         self._adjust_index = n - 1
         self.adjustments += 1

@@ -108,6 +108,7 @@ class Stand:
     mock: Any = None  # MockHandle when the stand is the built-in simulation
     confirmed: bool = False
     _kill_event: threading.Event = field(default_factory=threading.Event)
+    _wall_offset: float = field(default_factory=lambda: time.time() - time.monotonic())
     _closed: bool = False
 
     # ------------------------------------------------------------------ construction
@@ -172,7 +173,7 @@ class Stand:
         exp = self.experiment_log
         if exp is not None:
             try:
-                exp.append(host_t, tel)
+                exp.append(host_t + self._wall_offset, tel)  # the log keeps Unix time
             except Exception as exc:
                 self.experiment_log = None
                 self.emit("warning", f"telemetry log write failed: {exc}")

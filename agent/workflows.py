@@ -30,7 +30,6 @@ from .session import SessionError
 from .stand import KillTripped, Stand
 
 POLL_S = 0.02
-TELEMETRY_RATE_HZ = {"rate": 1000, "angle": 500, "heave": 250}
 HOLD_S = {"rate": 0.5, "angle": 1.0, "heave": 2.0}
 SAMPLING_DELAY_TICKS = 1.5  # zero-order hold (1/2 tick) + output applied on the next tick (1)
 GAIN_KEYS = ("kp", "ki", "kd", "tf", "b", "i_limit")
@@ -219,7 +218,7 @@ def _latest(stand: Stand, axis_i: int, loop_i: int) -> float | None:
 
 def _configure_telemetry(stand: Stand, lp: LoopPlan) -> None:
     axis_i, loop_i = _ids(lp)
-    rate = min(stand.info.loop_rate_hz, TELEMETRY_RATE_HZ[lp.loop])
+    rate = stand.info.loop_rate_hz  # one sample per tick: the analysis assumes the loop's grid
     axes = [int(Axis[a.upper()]) for a in stand.info.axes]
     stand.session.telemetry(rate, axes, loop_i)
 
@@ -261,7 +260,7 @@ def noise_check(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = _
     if lp.loop == "heave":
         _wait(stand, stop, 0.1)
         setpoint = _latest(stand, axis_i, loop_i) or 0.0
-    hold_s = HOLD_S[lp.loop]
+    hold_s = HOLD_S["heave"] if lp.axis == "heave" else HOLD_S[lp.loop]
     exp_id = exp_id or f"{lp.axis}-{lp.loop}-hold"
     exp = _start_experiment_log(stand, exp_id, _meta(stand, lp, "hold", setpoint=setpoint,
                                                      duration_s=hold_s))
@@ -328,43 +327,48 @@ def relay_experiment(stand: Stand, lp: LoopPlan, plan: Plan, *, trim: float, hys
     decision = None
     adjustments = []
     try:
-        while True:
-            _wait(stand, stop, 0.03)
-            cols = stand.buffer.axis(axis_i)
-            sel = cols["loop"] == loop_i
-            t_us = cols["time_us"][sel]
-            if len(t_us) < 3:
-                if time.monotonic() - started > 10:
-                    raise WorkflowError(f"{lp.key}: no telemetry arrived during the relay")
-                continue
-            if stand.state != DeviceState.RUNNING and time.monotonic() - started > 1.0:
-                raise WorkflowError(f"{lp.key}: the board ended the relay before it converged "
-                                    f"(duration limit {plan.max_experiment_s:g} s?)")
-            t_s = (t_us - t_us[0]) * 1e-6
-            decision = sup.decide(t_s, cols["measurement"][sel], cols["output"][sel],
-                                  cols["relay"][sel])
-            if decision.action == "adjust":
-                stand.session.adjust(tag, decision.amplitude, hysteresis, decision.bias)
-                adjustments.append({"t_s": float(t_s[-1]), "amplitude": decision.amplitude,
-                                    "bias": decision.bias, "why": decision.reason})
-                progress(Progress("ramp", f"{lp.key}: oscillation {decision.amplitude_seen:.3g}"
-                                  f" -> relay amplitude {decision.amplitude:.3g}, bias "
-                                  f"{decision.bias:.3g}", lp.key,
-                                  data={"amplitude": decision.amplitude, "bias": decision.bias,
-                                        "seen": decision.amplitude_seen}))
-            elif decision.action == "converged":
-                break
-            elif decision.action == "fail":
-                raise WorkflowError(f"{lp.key}: {decision.reason}")
-            else:
-                progress(Progress("relay", f"{lp.key}: relay running, period "
-                                  f"{decision.period_s:.3g} s, amplitude "
-                                  f"{decision.amplitude_seen:.3g}", lp.key,
-                                  data={"period_s": decision.period_s,
-                                        "seen": decision.amplitude_seen}))
-            if t_s[-1] > plan.max_experiment_s:
-                raise WorkflowError(f"{lp.key}: no converged oscillation within "
-                                    f"{plan.max_experiment_s:g} s")
+        try:
+            while True:
+                _wait(stand, stop, 0.03)
+                cols = stand.buffer.axis(axis_i)
+                sel = cols["loop"] == loop_i
+                t_us = cols["time_us"][sel]
+                if len(t_us) < 3:
+                    if time.monotonic() - started > 10:
+                        raise WorkflowError(f"{lp.key}: no telemetry arrived during the relay")
+                    continue
+                if stand.state != DeviceState.RUNNING and time.monotonic() - started > 1.0:
+                    raise WorkflowError(f"{lp.key}: the board ended the relay before it converged "
+                                        f"(duration limit {plan.max_experiment_s:g} s?)")
+                t_s = (t_us - t_us[0]) * 1e-6
+                decision = sup.decide(t_s, cols["measurement"][sel], cols["output"][sel],
+                                      cols["relay"][sel])
+                if decision.action == "adjust":
+                    stand.session.adjust(tag, decision.amplitude, hysteresis, decision.bias)
+                    adjustments.append({"t_s": float(t_s[-1]), "amplitude": decision.amplitude,
+                                        "bias": decision.bias, "why": decision.reason})
+                    progress(Progress("ramp", f"{lp.key}: oscillation {decision.amplitude_seen:.3g}"
+                                      f" -> relay amplitude {decision.amplitude:.3g}, bias "
+                                      f"{decision.bias:.3g}", lp.key,
+                                      data={"amplitude": decision.amplitude, "bias": decision.bias,
+                                            "seen": decision.amplitude_seen}))
+                elif decision.action == "converged":
+                    break
+                elif decision.action == "fail":
+                    raise WorkflowError(f"{lp.key}: {decision.reason}")
+                else:
+                    progress(Progress("relay", f"{lp.key}: relay running, period "
+                                      f"{decision.period_s:.3g} s, amplitude "
+                                      f"{decision.amplitude_seen:.3g}", lp.key,
+                                      data={"period_s": decision.period_s,
+                                            "seen": decision.amplitude_seen}))
+                if t_s[-1] > plan.max_experiment_s:
+                    raise WorkflowError(f"{lp.key}: no converged oscillation within "
+                                        f"{plan.max_experiment_s:g} s")
+        except (WorkflowError, KillTripped, Cancelled) as exc:
+            stand.buffer.stop()
+            _end_experiment_log(stand, exp, {"error": str(exc), "adjustments": adjustments})
+            raise
     finally:
         if stand.monitor is not None:
             stand.monitor.active = False
@@ -460,8 +464,11 @@ def verify_step(stand: Stand, lp: LoopPlan, plan: Plan, cand, *, setpoint: float
     settle = pred.settling_s if math.isfinite(pred.settling_s) else 10 * max(pred.rise_s, 0.01)
     step_at = max(0.1, 0.2 * settle)
     duration = min(step_at + max(3.0 * settle, 5 * pred.rise_s), plan.max_experiment_s)
-    if lp.loop == "rate" and lp.axis != "heave":
-        step = min(step, 0.5 * plan.limits.angle_rad / max(duration - step_at, 1e-3))
+    outer = "heave" if lp.axis == "heave" else "angle"
+    if lp.loop == "rate" and outer in stand.info.axes.get(lp.axis, ()):
+        # on a stand a rate step integrates: keep the angle (height) within half its limit
+        outer_limit = plan.limits.heave_m if lp.axis == "heave" else plan.limits.angle_rad
+        step = min(step, 0.5 * outer_limit / max(duration - step_at, 1e-3))
     exp_id = exp_id or f"{lp.axis}-{lp.loop}-verify"
     exp = _start_experiment_log(stand, exp_id, _meta(stand, lp, "step", amplitude=step,
                                                      setpoint=setpoint, step_at_s=step_at,

@@ -1,0 +1,219 @@
+"""Step responses predicted on a model, metrics of measured steps, closed-loop bandwidth.
+
+Predictions simulate the sampled loop exactly: the model's zero-order-hold equivalent (dead
+time included) in feedback with the board's backward-Euler controller
+(:mod:`agent.analysis.controller`), as polynomials in ``z^-1`` run through
+:func:`scipy.signal.lfilter`. The step ``h`` is the board's sample time when the oscillation
+spans 100 samples or fewer (then the prediction is the board's own loop), otherwise a hundredth
+of the ultimate period with the dead time reduced by ``h/2`` so that the hold of the simulation
+is not counted twice (the loop model already contains the board's hold).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import signal
+
+from .controller import controller_freq, discrete_polys
+from .lti import as_tf, freq_response, phase_crossover, zoh_discretize
+
+__all__ = ["StepMetrics", "StepPrediction", "step_metrics", "predict_step", "loop_bandwidth",
+           "LoopSim"]
+
+
+@dataclass(frozen=True)
+class StepMetrics:
+    """Overshoot (fraction of the step), 10–90 % rise time, 2 % settling time, IAE."""
+
+    overshoot: float
+    rise_s: float
+    settling_s: float
+    iae: float
+
+    def to_dict(self) -> dict:
+        return {k: float(getattr(self, k)) for k in ("overshoot", "rise_s", "settling_s", "iae")}
+
+
+@dataclass(frozen=True)
+class StepPrediction:
+    """Predicted unit set-point step and unit load step (at the plant input) on a model."""
+
+    overshoot: float
+    rise_s: float
+    settling_s: float
+    iae_setpoint: float
+    iae_load: float
+    t_s: np.ndarray
+    y_setpoint: np.ndarray
+    y_load: np.ndarray
+    load_peak: float = float("nan")
+    settled: bool = True
+
+    def to_dict(self, with_series: bool = False) -> dict:
+        d = {"overshoot": float(self.overshoot), "rise_s": float(self.rise_s),
+             "settling_s": float(self.settling_s), "iae_setpoint": float(self.iae_setpoint),
+             "iae_load": float(self.iae_load), "load_peak": float(self.load_peak),
+             "settled": bool(self.settled)}
+        if with_series:
+            d["t_s"] = [float(x) for x in self.t_s]
+            d["y_setpoint"] = [float(x) for x in self.y_setpoint]
+            d["y_load"] = [float(x) for x in self.y_load]
+        return d
+
+
+def step_metrics(t_s, y, y0: float, r: float) -> StepMetrics:
+    """Metrics of a step from ``y0`` to reference ``r`` (measured or simulated).
+
+    Overshoot is the peak beyond ``r`` as a fraction of ``r - y0``; rise time from 10 % to 90 %
+    of the step; settling time until the response stays within 2 % of the step around ``r``
+    (nan if it never does); IAE is ``∫|r - y| dt`` (trapezoidal). Common practice, no source.
+
+    Raises
+    ------
+    ValueError
+        If the arrays differ in length, hold fewer than 3 samples or non-finite values, or the
+        step has zero size.
+    """
+    t = np.asarray(t_s, dtype=float).ravel()
+    y = np.asarray(y, dtype=float).ravel()
+    if len(t) != len(y) or len(t) < 3:
+        raise ValueError(f"step_metrics needs equal-length time and response arrays of at least "
+                         f"3 samples (got {len(t)} and {len(y)}).")
+    if not (np.all(np.isfinite(t)) and np.all(np.isfinite(y))):
+        raise ValueError("step_metrics got NaN or infinite samples; cut the record before the gap.")
+    step = float(r) - float(y0)
+    if step == 0:
+        raise ValueError("step_metrics got a step of zero size (r equals y0); expected r != y0.")
+    z = (y - y0) / step
+    t0 = t[0]
+    overshoot = max(0.0, float(np.max(z)) - 1.0)
+    i10 = np.nonzero(z >= 0.1)[0]
+    i90 = np.nonzero(z >= 0.9)[0]
+    rise = float(t[i90[0]] - t[i10[0]]) if len(i10) and len(i90) else float("nan")
+    out = np.nonzero(np.abs(z - 1.0) > 0.02)[0]
+    if len(out) == 0:
+        settling = 0.0
+    elif out[-1] == len(z) - 1:
+        settling = float("nan")
+    else:
+        settling = float(t[out[-1] + 1] - t0)
+    iae = float(np.trapezoid(np.abs(r - y), t)) if hasattr(np, "trapezoid") else \
+        float(np.trapz(np.abs(r - y), t))
+    return StepMetrics(overshoot, rise, settling, iae)
+
+
+class LoopSim:
+    """Sampled closed loop of a model and the board's controller (see module docstring)."""
+
+    def __init__(self, model, sample_time_s: float | None = None, h: float | None = None):
+        num, den, delay = as_tf(model)
+        self.tf = (num, den, delay)
+        r = phase_crossover(self.tf)
+        self.wu = r[1] if r is not None else 1.0
+        self.tu = 2 * np.pi / self.wu
+        if h is None:
+            if sample_time_s is not None and self.tu / sample_time_s <= 100:
+                h = float(sample_time_s)
+            else:
+                h = self.tu / 100
+        self.h = float(h)
+        self.board_rate = sample_time_s is not None and abs(self.h - sample_time_s) < 1e-15
+        # the loop model holds the board's half tick already; the simulation adds h/2 again
+        sim_delay = max(delay - self.h / 2, 0.0)
+        dm = zoh_discretize(num, den, sim_delay, self.h)
+        self.bp = dm.b
+        self.ap = dm.a
+        self.m = dm.shift
+
+    def _polys(self, kp, ki, kd, tf_s, b):
+        dc, ny, nr = discrete_polys(kp, ki, kd, tf_s, b, self.h)
+        sh = np.zeros(self.m)
+        bny = np.concatenate([sh, np.convolve(self.bp, ny)])
+        ad = np.convolve(self.ap, dc)
+        n = max(len(bny), len(ad))
+        char = np.zeros(n)
+        char[: len(ad)] += ad
+        char[: len(bny)] += bny
+        return dc, ny, nr, char, sh
+
+    def responses(self, kp, ki, kd, tf_s, b, horizon_s: float):
+        """``(t, y_setpoint, y_load)`` for unit steps at time 0."""
+        dc, ny, nr, char, sh = self._polys(kp, ki, kd, tf_s, b)
+        n = int(np.ceil(horizon_s / self.h)) + 1
+        step = np.ones(n)
+        num_r = np.concatenate([sh, np.convolve(self.bp, nr)])
+        num_d = np.concatenate([sh, np.convolve(self.bp, dc)])
+        with np.errstate(all="ignore"):
+            ysp = signal.lfilter(num_r, char, step)
+            yld = signal.lfilter(num_d, char, step)
+        return np.arange(n) * self.h, ysp, yld
+
+    def load_iae(self, kp, ki, kd, tf_s, horizon_s: float) -> tuple[float, bool]:
+        """IAE of the unit load step response and whether it settled within the horizon."""
+        dc, ny, nr, char, sh = self._polys(kp, ki, kd, tf_s, 1.0)
+        n = int(np.ceil(horizon_s / self.h)) + 1
+        num_d = np.concatenate([sh, np.convolve(self.bp, dc)])
+        with np.errstate(all="ignore"):
+            y = signal.lfilter(num_d, char, np.ones(n))
+        if not np.all(np.isfinite(y)):
+            return float("inf"), False
+        tail = y[int(0.8 * n):]
+        peak = float(np.max(np.abs(y))) or 1.0
+        settled = float(np.ptp(tail)) < 0.02 * peak
+        return float(np.sum(np.abs(y)) * self.h), settled
+
+    def default_horizon(self, ki: float, kp: float) -> float:
+        ti = kp / ki if ki > 0 else 0.0
+        return float(min(max(20 * self.tu, 8 * ti), 60 * self.tu))
+
+
+def predict_step(model, cand, sample_time_s: float | None = None,
+                 horizon_s: float | None = None) -> StepPrediction:
+    """Predict unit set-point and load steps of ``cand`` (anything with kp, ki, kd, tf_s, b) on
+    ``model`` (use the loop model: ``Identification.model_loop``)."""
+    sim = LoopSim(model, sample_time_s)
+    kp, ki, kd, tf_s, b = cand.kp, cand.ki, cand.kd, cand.tf_s, cand.b
+    if horizon_s is None:
+        horizon_s = sim.default_horizon(ki, kp)
+    t, ysp, yld = sim.responses(kp, ki, kd, tf_s, b, horizon_s)
+    finite = np.all(np.isfinite(ysp)) and np.all(np.isfinite(yld))
+    if not finite or np.max(np.abs(ysp)) > 1e6:
+        nan = float("nan")
+        return StepPrediction(nan, nan, nan, float("inf"), float("inf"), t,
+                              np.nan_to_num(ysp), np.nan_to_num(yld), nan, False)
+    y_final = ysp[-1]
+    ref = 1.0
+    if ki <= 0:
+        # without integral action the response settles at its own final value
+        ref = y_final if abs(y_final) > 1e-12 else 1.0
+    met = step_metrics(t, ysp, 0.0, ref)
+    iae_sp = float(np.sum(np.abs(1.0 - ysp)) * sim.h)
+    iae_ld = float(np.sum(np.abs(yld)) * sim.h)
+    tail = yld[int(0.8 * len(yld)):]
+    settled = float(np.ptp(tail)) < 0.02 * (float(np.max(np.abs(yld))) or 1.0)
+    return StepPrediction(met.overshoot, met.rise_s, met.settling_s, iae_sp, iae_ld, t, ysp, yld,
+                          float(np.max(np.abs(yld))), bool(settled))
+
+
+def loop_bandwidth(model, cand) -> float:
+    """Closed-loop -3 dB bandwidth (rad/s) of ``T = L/(1+L)`` on ``model``, relative to its
+    low-frequency gain (the feedback path; set-point weighting does not change it)."""
+    r = phase_crossover(model)
+    wu = r[1] if r is not None else 1.0
+    w = wu * np.geomspace(1e-4, 1e2, 4000)
+    L = controller_freq(cand.kp, cand.ki, cand.kd, cand.tf_s, w) * freq_response(model, w)
+    T = np.abs(L / (1 + L))
+    ref = T[0]
+    below = np.nonzero(T < ref / np.sqrt(2))[0]
+    if len(below) == 0:
+        return float(w[-1])
+    i = int(below[0])
+    if i == 0:
+        return float(w[0])
+    # log-linear interpolation between the two grid points
+    t1, t2 = T[i - 1], T[i]
+    target = ref / np.sqrt(2)
+    f = (t1 - target) / (t1 - t2) if t1 != t2 else 0.0
+    return float(np.exp(np.log(w[i - 1]) + f * (np.log(w[i]) - np.log(w[i - 1]))))

@@ -1,0 +1,254 @@
+"""Tuning candidates from an identification, each judged on the identified loop model.
+
+Rules offered per controller type (the user chooses the type, the tool recommends a rule):
+
+=============  ============================================================================
+``pi``         ziegler_nichols, tyreus_luyben, amigo, ms_constrained
+``pid``        ziegler_nichols, tyreus_luyben, astrom_hagglund, amigo, ms_constrained
+``pd``         astrom_hagglund, ms_constrained
+=============  ============================================================================
+
+Ultimate-point rules use ``Identification.best`` (loop basis); AMIGO uses the FOPDT fit (or the
+integrating model) on the loop basis; ``ms_constrained`` is designed on the chosen loop model
+(:mod:`agent.analysis.design`). The recommendation is ``ms_constrained`` when its design
+succeeded, else AMIGO, else the candidate with the smallest Ms.
+
+For every candidate: Ms, gain and phase margins (:mod:`agent.analysis.robustness`), predicted
+set-point and load steps (:mod:`agent.analysis.predict`), gains in parallel and standard form,
+the board's discrete coefficients (:mod:`agent.analysis.controller`), an integrator limit and a
+set-point weight.
+
+Derivative filter: ``tf_s = Td/10`` (common practice, no source), never below one sample.
+Set-point weight: 1 for the ultimate-point rules (their published form); the AMIGO PID rule's
+own weight; otherwise the largest-benefit weight in {1, 0.8, ..., 0} that keeps the predicted
+overshoot at or below 10 % with the smallest set-point IAE.
+Integrator limit (anti-windup by clamping the integral term, Åström & Hägglund 2006): the
+actuator limit when given, else twice the larger of the measured trim and the relay amplitude
+(common practice, no source).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .controller import discretize, standard_form
+from .design import ms_constrained_design
+from .identify import Identification
+from .predict import StepPrediction, predict_step
+from .robustness import margins, sensitivity_peak
+from .rules import (amigo, amigo_setpoint_weight, astrom_hagglund_phase_margin, tyreus_luyben,
+                    ziegler_nichols)
+
+__all__ = ["Candidate", "TuningResult", "tune", "RULES", "make_candidate"]
+
+RULES = {
+    "pi": ("ziegler_nichols", "tyreus_luyben", "amigo", "ms_constrained"),
+    "pid": ("ziegler_nichols", "tyreus_luyben", "astrom_hagglund", "amigo", "ms_constrained"),
+    "pd": ("astrom_hagglund", "ms_constrained"),
+}
+
+SOURCES = {
+    "ziegler_nichols": "Ziegler & Nichols (1942), Trans. ASME 64",
+    "tyreus_luyben": "Tyreus & Luyben (1992), Ind. Eng. Chem. Res. 31(11)",
+    "astrom_hagglund": "Åström & Hägglund (1984), Automatica 20(5), phase margin 45°",
+    "amigo": "Åström & Hägglund (2004, PID; 2006, PI)",
+    "ms_constrained": "Garpinger, Hägglund & Åström (2014), J. Process Control 24(5)",
+}
+
+
+@dataclass(frozen=True)
+class Candidate:
+    """One tuning candidate, parallel-form gains of the board's controller plus its appraisal."""
+
+    rule: str
+    controller: str
+    kp: float
+    ki: float
+    kd: float
+    tf_s: float
+    b: float
+    ms: float
+    gm: float
+    pm_deg: float
+    predicted: StepPrediction
+    discrete: dict
+    i_limit: float
+    source: str = ""
+    notes: tuple[str, ...] = field(default_factory=tuple)
+
+    @property
+    def standard(self) -> dict:
+        return standard_form(self.kp, self.ki, self.kd, self.tf_s)
+
+    def to_dict(self) -> dict:
+        return {
+            "rule": self.rule, "controller": self.controller, "source": self.source,
+            "parallel": {"kp": float(self.kp), "ki": float(self.ki), "kd": float(self.kd),
+                         "tf_s": float(self.tf_s)},
+            "standard": self.standard,
+            "kp": float(self.kp), "ki": float(self.ki), "kd": float(self.kd),
+            "tf_s": float(self.tf_s), "b": float(self.b), "ms": float(self.ms),
+            "gm": float(self.gm), "pm_deg": float(self.pm_deg),
+            "predicted": self.predicted.to_dict(), "discrete": dict(self.discrete),
+            "i_limit": float(self.i_limit), "notes": list(self.notes),
+        }
+
+
+@dataclass(frozen=True)
+class TuningResult:
+    """All candidates and the name of the recommended rule."""
+
+    candidates: tuple[Candidate, ...]
+    recommended: str
+    controller: str = "pi"
+    ms_target: float = 1.4
+    notes: tuple[str, ...] = field(default_factory=tuple)
+
+    def get(self, rule: str) -> Candidate:
+        for c in self.candidates:
+            if c.rule == rule:
+                return c
+        raise KeyError(rule)
+
+    @property
+    def recommended_candidate(self) -> Candidate:
+        return self.get(self.recommended)
+
+    def to_dict(self) -> dict:
+        return {"controller": self.controller, "ms_target": float(self.ms_target),
+                "recommended": self.recommended, "notes": list(self.notes),
+                "candidates": [c.to_dict() for c in self.candidates]}
+
+
+@dataclass(frozen=True)
+class _Gains:
+    kp: float
+    ki: float
+    kd: float
+    tf_s: float
+    b: float
+
+
+def _choose_b(model, g: _Gains, sample_time_s: float) -> float:
+    if g.ki <= 0:
+        return 1.0
+    best = None
+    fallback = None
+    for b in (1.0, 0.8, 0.6, 0.4, 0.2, 0.0):
+        pr = predict_step(model, _Gains(g.kp, g.ki, g.kd, g.tf_s, b), sample_time_s)
+        if not np.isfinite(pr.iae_setpoint):
+            continue
+        if fallback is None or pr.overshoot < fallback[0]:
+            fallback = (pr.overshoot, b)
+        if pr.overshoot <= 0.10 and (best is None or pr.iae_setpoint < best[0]):
+            best = (pr.iae_setpoint, b)
+    if best is not None:
+        return best[1]
+    return fallback[1] if fallback else 1.0
+
+
+def make_candidate(rule: str, controller: str, model, kp: float, ki: float, kd: float,
+                   tf_s: float, b: float, sample_time_s: float, i_limit: float,
+                   notes: tuple[str, ...] = ()) -> Candidate:
+    """Appraise gains on ``model`` (loop basis) and wrap them as a :class:`Candidate`."""
+    ms = sensitivity_peak(model, kp, ki, kd, tf_s)[0]
+    gm, pm, _, _ = margins(model, kp, ki, kd, tf_s)
+    pred = predict_step(model, _Gains(kp, ki, kd, tf_s, b), sample_time_s)
+    disc = discretize(kp, ki, kd, tf_s, b, sample_time_s, i_limit)
+    return Candidate(rule, controller, float(kp), float(ki), float(kd), float(tf_s), float(b),
+                     float(ms), float(gm), float(pm), pred, disc, float(i_limit),
+                     SOURCES.get(rule, ""), tuple(notes))
+
+
+def _fopdt_for_amigo(ident: Identification) -> tuple[float, float, float, bool]:
+    ts_half = 0.5 * ident.sample_time_s
+    chosen = ident.model
+    if chosen.kind == "ipdt":
+        p = chosen.params
+        # lag lumped into the dead time (common practice, no source)
+        return p["K"], 0.0, p["L"] + ts_half + p["T"], True
+    fo = ident.models.get("fopdt")
+    p = fo.params
+    K, T, L = p["K"], p["T"], p["L"] + ts_half
+    if T > 50 * ident.cycles.period_s:
+        return K / T, 0.0, L, True  # indistinguishable from an integrator
+    return K, T, L, False
+
+
+def tune(ident: Identification, controller: str = "pi", ms_target: float = 1.4,
+         sample_time_s: float = 0.001, output_limit: float | None = None) -> TuningResult:
+    """Tuning candidates for ``controller`` in {"pi", "pd", "pid"} from an identification.
+
+    Raises
+    ------
+    ValueError
+        For an unknown controller type, ``ms_target <= 1`` or a non-positive sample time.
+    """
+    controller = str(controller).lower()
+    if controller not in RULES:
+        raise ValueError(f"Unknown controller type {controller!r}; expected 'pi', 'pd' or 'pid'.")
+    if not ms_target > 1.0:
+        raise ValueError(f"ms_target is {ms_target}; expected a maximum sensitivity above 1 "
+                         "(1.4 is a robust default, 2.0 an aggressive one).")
+    if not sample_time_s > 0:
+        raise ValueError(f"sample_time_s is {sample_time_s}; expected the loop's sample time (s).")
+    model = ident.model_loop
+    ku, tu = ident.best.ku, ident.best.tu_s
+    d = ident.relay_amplitude if np.isfinite(ident.relay_amplitude) else 0.0
+    trim = abs(ident.bias_estimate) if ident.bias_estimate is not None else 0.0
+    i_limit = float(output_limit) if output_limit else 2.0 * max(trim, d)
+    cands: list[Candidate] = []
+    notes: list[str] = []
+
+    def tf_rule(kp, kd):
+        return max(kd / kp / 10.0, sample_time_s) if kd > 0 else 0.0
+
+    for rule in RULES[controller]:
+        try:
+            if rule == "ziegler_nichols":
+                kp, ki, kd = ziegler_nichols(ku, tu, controller)
+                tf_s, b = tf_rule(kp, kd), 1.0
+            elif rule == "tyreus_luyben":
+                kp, ki, kd = tyreus_luyben(ku, tu, controller)
+                tf_s, b = tf_rule(kp, kd), 1.0
+            elif rule == "astrom_hagglund":
+                kp, ki, kd = astrom_hagglund_phase_margin(ku, tu, controller)
+                tf_s, b = tf_rule(kp, kd), 1.0
+            elif rule == "amigo":
+                K, T, L, integ = _fopdt_for_amigo(ident)
+                kp, ki, kd = amigo(K, T, L, controller, integrating=integ)
+                tf_s = tf_rule(kp, kd)
+                if controller == "pid":
+                    b = amigo_setpoint_weight(0.0 if integ else L / (L + T))
+                else:
+                    b = _choose_b(model, _Gains(kp, ki, kd, tf_s, 1.0), sample_time_s)
+            else:  # ms_constrained
+                des = ms_constrained_design(model, controller, ms_target, sample_time_s,
+                                            min_tf_s=sample_time_s)
+                if not des.success and des.kp <= 0:
+                    notes.append(f"ms_constrained: {des.message}")
+                    continue
+                kp, ki, kd, tf_s = des.kp, des.ki, des.kd, des.tf_s
+                b = _choose_b(model, _Gains(kp, ki, kd, tf_s, 1.0), sample_time_s)
+                if not des.success:
+                    notes.append(f"ms_constrained: {des.message}")
+        except ValueError as exc:
+            notes.append(f"{rule}: {exc}")
+            continue
+        cands.append(make_candidate(rule, controller, model, kp, ki, kd, tf_s, b,
+                                    sample_time_s, i_limit))
+    if not cands:
+        raise ValueError("No tuning candidate could be computed from this identification.")
+    names = [c.rule for c in cands]
+    rec = None
+    if "ms_constrained" in names:
+        c = cands[names.index("ms_constrained")]
+        if c.ms <= ms_target * 1.02 and c.predicted.settled:
+            rec = "ms_constrained"
+    if rec is None and "amigo" in names:
+        rec = "amigo"
+    if rec is None:
+        rec = min(cands, key=lambda c: c.ms).rule
+    return TuningResult(tuple(cands), rec, controller, float(ms_target), tuple(notes))
