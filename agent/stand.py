@@ -50,9 +50,11 @@ class Buffer:
         self._arr = np.empty((0, len(self.COLUMNS)))
         self._n = 0
         self.recording = False
+        self.started_s = 0.0
         self.live: deque = deque(maxlen=live_len)  # (host_t, Telemetry) for plots
 
     def start(self) -> None:
+        self.started_s = time.monotonic()
         with self._lock:
             self._pending = []
             self._arr = np.empty((4096, len(self.COLUMNS)))
@@ -109,6 +111,8 @@ class Stand:
     confirmed: bool = False
     _kill_event: threading.Event = field(default_factory=threading.Event)
     _wall_offset: float = field(default_factory=lambda: time.time() - time.monotonic())
+    last_telemetry_s: float = field(default_factory=time.monotonic)
+    telemetry_timeout_s: float = 1.0  # silence during an experiment = a dead link: kill
     _closed: bool = False
 
     # ------------------------------------------------------------------ construction
@@ -161,12 +165,14 @@ class Stand:
     def log_event(self, kind: str, **fields) -> None:
         if self.log is not None:
             try:
-                self.log.event(kind, host_time_s=time.time(), **fields)
+                fields.setdefault("host_time_s", time.time())
+                self.log.event(kind, **fields)
             except Exception as exc:  # a full disk must not stop a kill; say it once
                 self.emit("warning", f"log write failed: {exc}")
 
     # ------------------------------------------------------------------ data flow
     def _on_telemetry(self, host_t: float, tel: m.Telemetry) -> None:
+        self.last_telemetry_s = host_t
         if self.monitor is not None:
             self.monitor.check(host_t, tel)
         self.buffer.add(host_t, tel)
@@ -241,6 +247,12 @@ class Stand:
         return self._kill_event.is_set() or self.session.state == DeviceState.KILLED
 
     def check_kill(self) -> None:
+        """Raise KillTripped if anything killed; also kill if the board went silent while an
+        experiment records (a cable pulled out of a pty or USB adapter gives no error)."""
+        if not self.killed and self.buffer.recording:
+            gap = time.monotonic() - max(self.last_telemetry_s, self.buffer.started_s)
+            if gap > self.telemetry_timeout_s:
+                self.kill(KillReason.HOST_LINK, gap)
         if self.killed:
             info = self.kills[-1] if self.kills else {"reason": "device reports KILLED"}
             raise KillTripped(info)

@@ -1,0 +1,180 @@
+"""The main job end to end, over a real pseudo-terminal against the mock board (accelerated clock).
+
+Every test here drives `tetherloop` as a user would (a child process on the pty) or the shared
+workflows over the same pty, and checks the outcome on the simulated board itself.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import signal
+import subprocess
+import sys
+import time
+
+import control
+import numpy as np
+import pytest
+
+from agent.logbook import read_session
+from mock_device.scenarios import load_scenario
+from protocol.messages import DeviceState, ExperimentKind, KillReason
+from tests.conftest import run_cli
+
+
+def exact_ultimate(num, den, delay_s):
+    """Ku and Tu of num/den * e^(-delay s) from python-control's margin() on a 12th-order Padé
+    approximation of the delay (python-control, margin(); Padé approximation of a delay)."""
+    g = control.tf(num, den)
+    if delay_s > 0:
+        g = g * control.tf(*control.pade(delay_s, 12))
+    gm, pm, wcg, wcp = control.margin(g)
+    return float(gm), 2 * math.pi / float(wcg)
+
+
+def wait_for(cond, timeout=60.0, poll=0.01):
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        if cond():
+            return True
+        time.sleep(poll)
+    return False
+
+
+@pytest.mark.parametrize("scenario, loop", [
+    ("tf-fopdt", "rate"), ("tf-third-order", "rate"), ("tf-integrating", "angle")])
+def test_tune_generic_plant_recovers_ultimate_point(tmp_path, mock_pty, scenario, loop):
+    # Reference: python-control margins of the scenario's ground-truth plant, with the board's
+    # sampling delay added when the result is reported on the loop as the controller sees it.
+    h = mock_pty(scenario, speed=20.0)
+    r = run_cli("tune", "--port", h.port, "--axis", "roll", "--loop", loop, "--json",
+                "--confirm-safe", log_dir=tmp_path)
+    assert r.returncode == 0, r.stderr[-2000:]
+    out = json.loads(r.stdout)
+    sc = load_scenario(scenario)
+    num, den, delay = sc.ground_truth("roll", loop)
+    extra = sc.sampling_delay_s if out["ultimate_basis"] == "loop" else 0.0
+    ku, tu = exact_ultimate(num, den, delay + extra)
+    assert out["ultimate_gain"] == pytest.approx(ku, rel=0.02)
+    assert out["ultimate_period_s"] == pytest.approx(tu, rel=0.02)
+    assert out["model"]["kind"] in ("fopdt", "sopdt", "ipdt")
+    assert {"rule", "kp", "ki", "kd", "ms", "gm", "pm_deg"} <= set(out["candidates"][0])
+    assert out["recommended"] in [c["rule"] for c in out["candidates"]]
+    assert os.path.isdir(out["session"])
+    assert h.firmware.state == DeviceState.DISARMED
+
+
+def test_whole_stand_autotune_of_the_gimbal(tmp_path, mock_pty):
+    h = mock_pty("gimbal-quad", speed=10.0)
+    r = run_cli("autotune", "--port", h.port, "--json", "--confirm-safe", log_dir=tmp_path,
+                timeout=420)
+    assert r.returncode == 0, r.stdout[-3000:] + r.stderr[-3000:]
+    out = json.loads(r.stdout)
+    assert out["outcome"] == "ok"
+    keys = [lr["loop"] for lr in out["loops"]]
+    # cascade order: every rate loop before any angle loop (common practice, no source)
+    assert keys.index("yaw.rate") < keys.index("roll.angle")
+    for lr in out["loops"]:
+        assert lr["status"] == "verified", lr
+        assert lr["relay"]["periods_after_ramp"] <= 10
+        for name, value in lr["applied_gains"].items():  # gains are on the board
+            assert h.firmware.settings.values[name] == pytest.approx(value, rel=1e-6)
+    assert len(out["cascade"]) == 3
+    # the log is complete: every experiment has telemetry and a result
+    rec = read_session(out["session"])
+    assert rec.manifest.get("settings_after")
+    for exp_id, exp in rec.experiments.items():
+        assert exp.recovered_rows > 0, exp_id
+        assert exp.result is not None, exp_id
+    assert os.path.exists(out["report"])
+
+
+def test_heave_trim_centring_and_integral_action(tmp_path, mock_pty):
+    h = mock_pty("heave-rail", speed=10.0)
+    r = run_cli("autotune", "--port", h.port, "--json", "--confirm-safe", log_dir=tmp_path,
+                timeout=420)
+    assert r.returncode == 0, r.stdout[-3000:] + r.stderr[-3000:]
+    out = json.loads(r.stdout)
+    rate = next(lr for lr in out["loops"] if lr["loop"] == "heave.rate")
+    sc = load_scenario("heave-rail")
+    p = sc.heave
+    # hover balance: thrust = m g - wind force (Newton's second law at rest)
+    hover = (p.mass_kg * 9.81 - p.wind_n) / p.thrust_per_unit_n
+    assert rate["relay"]["final_bias"] == pytest.approx(hover, abs=0.1 * rate["relay"]["final_amplitude"])
+    height = next(lr for lr in out["loops"] if lr["loop"] == "heave.heave")
+    assert height["status"] == "verified", height
+    assert height["applied_gains"]["heave.heave.ki"] > 0  # integral action against the load
+
+
+def test_operator_ctrl_c_kills_mid_relay(tmp_path, mock_pty):
+    h = mock_pty("gimbal-quad", speed=2.0)
+    env = dict(os.environ, TETHERLOOP_LOG_DIR=str(tmp_path))
+    proc = subprocess.Popen([sys.executable, "-m", "agent.cli", "tune", "--port", h.port,
+                             "--axis", "roll", "--loop", "angle", "--confirm-safe"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
+    try:
+        assert wait_for(lambda: h.firmware.exp is not None
+                        and h.firmware.exp.kind == ExperimentKind.RELAY, 60)
+        proc.send_signal(signal.SIGINT)
+        out, err = proc.communicate(timeout=60)
+    finally:
+        proc.kill()
+    assert proc.returncode != 0
+    assert wait_for(lambda: h.firmware.state == DeviceState.KILLED, 5)
+    kills = [e for e in h.firmware.events if e.kind == 4]
+    assert kills and kills[-1].reason == KillReason.HOST_OPERATOR
+    session = next(p for p in tmp_path.iterdir() if p.is_dir())
+    rec = read_session(session)
+    assert any(ev["kind"] == "kill" for ev in rec.events)
+
+
+def test_host_process_killed_mid_relay_device_watchdog_disarms(tmp_path, mock_pty):
+    h = mock_pty("gimbal-quad", speed=2.0)
+    env = dict(os.environ, TETHERLOOP_LOG_DIR=str(tmp_path))
+    proc = subprocess.Popen([sys.executable, "-m", "agent.cli", "tune", "--port", h.port,
+                             "--axis", "pitch", "--loop", "angle", "--confirm-safe"],
+                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env)
+    try:
+        assert wait_for(lambda: h.firmware.exp is not None
+                        and h.firmware.exp.kind == ExperimentKind.RELAY, 60)
+        time.sleep(0.2)
+        proc.send_signal(signal.SIGKILL)
+        proc.wait(10)
+    finally:
+        proc.kill()
+    watchdog_s = h.firmware.settings.values["watchdog_s"]
+    t0 = time.monotonic()
+    assert wait_for(lambda: h.firmware.state == DeviceState.KILLED, watchdog_s + 2)
+    assert time.monotonic() - t0 <= watchdog_s + 1.0
+    kills = [e for e in h.firmware.events if e.kind == 4]
+    assert kills[-1].reason == KillReason.WATCHDOG
+    session = next(p for p in tmp_path.iterdir() if p.is_dir())
+    rec = read_session(session)  # readable after a kill -9, whatever was mid-write
+    relay = [e for k, e in rec.experiments.items() if k.endswith("relay")]
+    assert relay and relay[0].recovered_rows > 100
+
+
+def test_link_dropped_mid_relay(tmp_path, mock_pty):
+    # The link goes dead (both ways) a moment after the angle relay starts: the mock's fault
+    # layer is armed with a far-off cut and pulled forward once the relay runs.
+    from dataclasses import replace
+    h = mock_pty("gimbal-quad", speed=2.0, faults={"drop_at_s": 1e9})
+    env = dict(os.environ, TETHERLOOP_LOG_DIR=str(tmp_path))
+    proc = subprocess.Popen([sys.executable, "-m", "agent.cli", "tune", "--port", h.port,
+                             "--axis", "roll", "--loop", "angle", "--confirm-safe"],
+                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
+    try:
+        assert wait_for(lambda: h.firmware.exp is not None
+                        and h.firmware.exp.kind == ExperimentKind.RELAY, 60)
+        h._link.cfg = replace(h._link.cfg, drop_at_s=h.firmware.device_time_s + 0.2)
+        out, err = proc.communicate(timeout=60)
+    finally:
+        proc.kill()
+    assert proc.returncode != 0
+    assert wait_for(lambda: h.firmware.state == DeviceState.KILLED, 5)
+    kills = [e for e in h.firmware.events if e.kind == 4]
+    assert kills[-1].reason == KillReason.WATCHDOG
+    assert "Traceback" not in err
+    assert "KILL" in out + err
