@@ -231,6 +231,12 @@ class Stand:
                 "value": float(value), "threshold": float(threshold), "text": text,
                 "host_time_s": time.time()}
 
+    def stop_recording(self) -> None:
+        """The experiment is over: stop buffering and stop writing its telemetry file (its
+        results are written later, after the analysis)."""
+        self.buffer.stop()
+        self.experiment_log = None
+
     # ------------------------------------------------------------------ kill and arm
     def kill(self, reason: int = KillReason.HOST_OPERATOR, value: float = 0.0) -> None:
         """Kill now, from any thread, in any state (operator key, Ctrl-C, errors)."""

@@ -274,7 +274,7 @@ def noise_check(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = _
         _run_for_device_time(stand, stop, axis_i, hold_s, 30 + 10 * hold_s)
     finally:
         _stop_quietly(stand, tag)
-        stand.buffer.stop()
+        stand.stop_recording()
     stand.check_kill()
     cols = stand.buffer.axis(axis_i)
     y = cols["measurement"][cols["loop"] == loop_i]
@@ -366,14 +366,14 @@ def relay_experiment(stand: Stand, lp: LoopPlan, plan: Plan, *, trim: float, hys
                     raise WorkflowError(f"{lp.key}: no converged oscillation within "
                                         f"{plan.max_experiment_s:g} s")
         except (WorkflowError, KillTripped, Cancelled) as exc:
-            stand.buffer.stop()
+            stand.stop_recording()
             _end_experiment_log(stand, exp, {"error": str(exc), "adjustments": adjustments})
             raise
     finally:
         if stand.monitor is not None:
             stand.monitor.active = False
         _stop_quietly(stand, tag)
-        stand.buffer.stop()
+        stand.stop_recording()
         _idle_telemetry(stand, lp)
     stand.check_kill()
     cols = stand.buffer.columns()
@@ -489,7 +489,7 @@ def verify_step(stand: Stand, lp: LoopPlan, plan: Plan, cand, *, setpoint: float
         if stand.monitor is not None:
             stand.monitor.active = False
         _stop_quietly(stand, tag)
-        stand.buffer.stop()
+        stand.stop_recording()
         _idle_telemetry(stand, lp)
     stand.check_kill()
     cols = stand.buffer.axis(axis_i)

@@ -48,7 +48,7 @@ class Design:
 
 
 class _Problem:
-    def __init__(self, model, ms_target, sample_time_s, filter_n, min_tf_s):
+    def __init__(self, model, ms_target, sample_time_s, filter_n, min_tf_s, extra_models=()):
         self.model = model
         self.sim = LoopSim(model, sample_time_s)
         self.wu, self.tu = self.sim.wu, self.sim.tu
@@ -56,6 +56,9 @@ class _Problem:
         self.ku = 1.0 / abs(g_u)
         self.w = self.wu * np.geomspace(10 ** -2.5, 10 ** 1.6, 700)
         self.g = freq_response(model, self.w)
+        # plausible alternatives: Ms must hold on each of them too (robust over the models the
+        # record cannot tell apart)
+        self.g_extra = [freq_response(m, self.w) for m in extra_models]
         self.ms_target = ms_target
         self.filter_n = filter_n
         self.min_tf = min_tf_s
@@ -68,7 +71,10 @@ class _Problem:
 
     def ms(self, kp, ki, kd):
         c = controller_freq(kp, ki, kd, self.tf_of(kp, kd), self.w)
-        return float(np.max(np.abs(1.0 / (1.0 + c * self.g))))
+        ms = float(np.max(np.abs(1.0 / (1.0 + c * self.g))))
+        for g in self.g_extra:
+            ms = max(ms, float(np.max(np.abs(1.0 / (1.0 + c * g)))))
+        return ms
 
     def iae(self, kp, ki, kd):
         v, settled = self.sim.load_iae(kp, ki, kd, self.tf_of(kp, kd), self.horizon)
@@ -138,12 +144,15 @@ def _objective(p: _Problem, with_d: bool):
 
 def ms_constrained_design(model, controller: str = "pi", ms_target: float = 1.4,
                           sample_time_s: float | None = None, filter_n: float = 10.0,
-                          min_tf_s: float = 0.0) -> Design:
+                          min_tf_s: float = 0.0, extra_models: tuple = ()) -> Design:
     """IAE-optimal PI/PID for a unit load step under ``Ms <= ms_target`` on ``model``
-    (or the stiffest PD under the same bound); see the module docstring."""
+    (or the stiffest PD under the same bound); see the module docstring.
+
+    ``extra_models``: other plausible models of the same loop; the Ms bound is then enforced
+    on every one of them (the IAE is still judged on ``model``)."""
     if ms_target <= 1.0:
         raise ValueError(f"ms_target must exceed 1 (got {ms_target}); 1.2–2.0 is the usual range.")
-    p = _Problem(model, ms_target, sample_time_s, filter_n, min_tf_s)
+    p = _Problem(model, ms_target, sample_time_s, filter_n, min_tf_s, tuple(extra_models))
     if controller == "pd":
         best = None
         for td in p.tu * np.array([0.01, 0.03, 0.06, 0.1, 0.15, 0.22, 0.3, 0.45]):
@@ -156,7 +165,8 @@ def ms_constrained_design(model, controller: str = "pi", ms_target: float = 1.4,
         kp, td = best
         kd = kp * td
         tf_s = p.tf_of(kp, kd)
-        ms = sensitivity_peak(model, kp, 0.0, kd, tf_s)[0]
+        ms = max([sensitivity_peak(model, kp, 0.0, kd, tf_s)[0]] +
+                 [sensitivity_peak(m, kp, 0.0, kd, tf_s)[0] for m in extra_models])
         v, settled = p.iae(kp, 0.0, kd)
         return Design(kp, 0.0, kd, tf_s, ms, v, settled, True, "stiffest PD under the Ms bound")
 
@@ -195,7 +205,8 @@ def ms_constrained_design(model, controller: str = "pi", ms_target: float = 1.4,
     if not settled or not np.isfinite(v) or v > cands[0][0]:
         _, kp, ki, kd = cands[0]
     tf_s = p.tf_of(kp, kd)
-    ms = sensitivity_peak(model, kp, ki, kd, tf_s)[0]
+    ms = max([sensitivity_peak(model, kp, ki, kd, tf_s)[0]] +
+             [sensitivity_peak(m, kp, ki, kd, tf_s)[0] for m in extra_models])
     v, settled = p.iae(kp, ki, kd)
     ok = settled and ms <= ms_target * 1.01
     return Design(kp, ki, kd, tf_s, ms, v, settled, ok,

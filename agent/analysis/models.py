@@ -286,11 +286,15 @@ def fit_models(dt: float, u: np.ndarray, y: np.ndarray, period_s: float, amplitu
     starts at rest and with a free initial state. The at-rest fit also sees the start-up, which
     pins the low-frequency gain; it is kept unless its residual is clearly worse (more than
     twice that of the free fit and by more than 1 % of the amplitude), i.e. unless the record
-    did not start at rest."""
+    did not start at rest. The free fit is skipped when the at-rest fit is already within
+    0.5 % of the amplitude."""
     out = {}
     for k in kinds:
-        free = fit_model(k, dt, u, y, period_s, amplitude, variant="free")
         rest = fit_model(k, dt, u, y, period_s, amplitude, variant="rest")
+        if rest.rel_rmse <= 0.005:
+            out[k] = rest  # already reproduces the record: no need to try a free start
+            continue
+        free = fit_model(k, dt, u, y, period_s, amplitude, variant="free")
         if rest.rmse <= max(2.0 * free.rmse, free.rmse + 0.01 * amplitude):
             out[k] = rest
         else:

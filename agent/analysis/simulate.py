@@ -50,6 +50,9 @@ def simulate_relay(num, den, delay_s: float, amplitude: float, hysteresis: float
     otherwise with zero state.
     """
     num, den, delay_s = as_tf((num, den, delay_s))
+    if len(num) >= len(den):
+        raise ValueError("simulate_relay needs a strictly proper plant (numerator degree below "
+                         "the denominator's); a measurement never responds instantly.")
     n = int(round(duration_s / dt)) + 1
     dm = zoh_discretize(num, den, delay_s, dt)
     rng = np.random.default_rng(seed)
@@ -69,12 +72,7 @@ def simulate_relay(num, den, delay_s: float, amplitude: float, hysteresis: float
     phi, g0, g1, c, d = dm.phi, dm.g0, dm.g1, dm.c, dm.d
     state = 1.0 if setpoint - (float(c @ x) if nx else d * u0) >= 0 else -1.0
     for k in range(n):
-        # the delayed plant input over this tick: the value applied m and m+1 ticks ago
-        w_new = hist[-1 - m] if m > 0 else None
-        y_true = float(c @ x) if nx else 0.0
-        if d != 0.0:
-            # direct feed-through sees the delayed input at the sample instant
-            y_true += d * (hist[-1 - m] if (dm.frac or m > 0) else u0)
+        y_true = float(c @ x)
         ym = y_true + noise[k]
         e = setpoint - ym
         if e > hysteresis:
@@ -92,7 +90,6 @@ def simulate_relay(num, den, delay_s: float, amplitude: float, hysteresis: float
             x = phi @ x + g0 * cur + g1 * prev
         if len(hist) > m + 4:
             del hist[0]
-        del w_new
     t = np.arange(n) * dt
     return RelayRecord(t_s=t, y=y, u=u, setpoint=float(setpoint), amplitude=float(amplitude),
                        hysteresis=float(hysteresis), bias=float(bias), sample_time_s=float(dt),

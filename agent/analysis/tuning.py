@@ -8,6 +8,10 @@ Rules offered per controller type (the user chooses the type, the tool recommend
 ``pd``         astrom_hagglund, ms_constrained
 =============  ============================================================================
 
+Caveat: a relay record pins the loop near its oscillation frequency, not at low frequency; for
+plants outside the model families (high-order lags, integrators behind lags) the design's Ms on
+the real loop can exceed the target (see tests/bench/identify.py for the measured figures).
+
 Ultimate-point rules use ``Identification.best`` (loop basis); AMIGO uses the FOPDT fit (or the
 integrating model) on the loop basis; ``ms_constrained`` is designed on the chosen loop model
 (:mod:`agent.analysis.design`). The recommendation is ``ms_constrained`` when its design

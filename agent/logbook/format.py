@@ -57,6 +57,12 @@ def check_name(name: str, what: str) -> str:
     return name
 
 
+def is_kill(kind: object) -> bool:
+    """True for event kinds that record a kill (``kill*``), not for ``kill_cleared``."""
+    k = str(kind).lower()
+    return k.startswith("kill") and not k.startswith("kill_clear")
+
+
 def slug(text: str) -> str:
     """A folder-safe version of free text (device ids in default session names)."""
     s = re.sub(r"[^A-Za-z0-9._-]+", "-", str(text)).strip("-._")

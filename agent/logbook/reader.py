@@ -12,7 +12,8 @@ from typing import Any
 import numpy as np
 
 from .format import (COLUMNS, EVENTS, F32_COLUMNS, FORMAT_NAME, INT_COLUMNS, MANIFEST, META,
-                     RESULTS, TELEMETRY, LogbookError, LogbookVersionError, check_version)
+                     RESULTS, TELEMETRY, TELEMETRY_COMMENT, TELEMETRY_HEADER, LogbookError,
+                     LogbookVersionError, check_version)
 
 _TELEMETRY_MAGIC = f"# {FORMAT_NAME} telemetry "
 
@@ -181,6 +182,9 @@ def read_telemetry(path: Path) -> tuple[dict[str, np.ndarray], list[str]]:
     first_nl = data.find(b"\n")
     if not data.strip(b"\x00"):
         return empty_columns(), [f"{where} is empty (the program stopped before its header)."]
+    if (TELEMETRY_COMMENT + TELEMETRY_HEADER).encode("utf-8").startswith(data.rstrip(b"\x00")):
+        return empty_columns(), [f"{where}: the header was cut off (the program stopped as the "
+                                 "experiment began); no rows."]
     first = data[:first_nl if first_nl >= 0 else len(data)].decode("utf-8", "replace")
     if not first.startswith(_TELEMETRY_MAGIC):
         raise LogbookError(f"{path} is not a tetherloop telemetry file (its first line should "
@@ -349,17 +353,26 @@ def _device_text(device: Any) -> str:
 
 
 def summarize_manifest(path: Path, manifest: dict) -> SessionSummary:
+    """One listing line from a manifest (plus a quick look at results and events)."""
     tuned = []
     for e in manifest.get("experiments") or []:
-        if isinstance(e, dict) and e.get("kind") == "relay":
-            label = f"{e.get('axis_name') or '?'}.{e.get('loop_name') or '?'}"
-            if label not in tuned:
-                tuned.append(label)
+        if not (isinstance(e, dict) and e.get("kind") == "relay"):
+            continue
+        label = f"{e.get('axis_name') or '?'}.{e.get('loop_name') or '?'}"
+        chosen = False
+        try:
+            doc = json.loads((path / str(e.get("id")) / RESULTS).read_text(encoding="utf-8"))
+            chosen = bool((doc.get("result") or {}).get("chosen"))
+        except (OSError, ValueError, AttributeError):
+            pass
+        label = label if chosen else f"{label} (no gains)"
+        if label not in tuned:
+            tuned.append(label)
     kills = 0
     try:
         with open(path / EVENTS, "rb") as fh:
             for line in fh:
-                if b'"kind": "kill' in line:
+                if b'"kind": "kill' in line and b'"kind": "kill_clear' not in line:
                     kills += 1
     except OSError:
         pass

@@ -15,7 +15,7 @@ from typing import Any
 
 import numpy as np
 
-from .format import LogbookError
+from .format import LogbookError, is_kill
 from .reader import ExperimentRecord, SessionRecord, read_session
 
 # Colours picked for contrast and colour-blind safety (Okabe–Ito palette, common practice).
@@ -144,7 +144,7 @@ def _kill_times(sess: SessionRecord, rec: ExperimentRecord, cols: dict) -> list[
     out = []
     for ev in sess.events:
         kind = str(ev.get("kind", ""))
-        if not kind.lower().startswith("kill") or kind.lower().startswith("kill_clear"):
+        if not is_kill(kind):
             continue
         dev = ev.get("device_time_us")
         if dev is None and ev.get("host_time_s") is not None and host.size > 1:
@@ -300,6 +300,15 @@ def _plot_candidates(rec, tuning, chosen_rule) -> str:
         ax1.plot(pred.t_s, pred.y_setpoint, color=col, lw=lw, label=label)
         if getattr(pred, "y_load", None) is not None:
             ax2.plot(pred.t_s, pred.y_load, color=col, lw=lw, label=label)
+    settle = [float(c.predicted.settling_s) for c in cands
+              if getattr(c, "predicted", None) is not None
+              and np.isfinite(getattr(c.predicted, "settling_s", np.nan))]
+    t_end = max((float(c.predicted.t_s[-1]) for c in cands
+                 if getattr(c, "predicted", None) is not None), default=0.0)
+    if settle and t_end > 0:
+        right = min(t_end, 1.6 * max(settle))
+        ax1.set_xlim(0.0, right)
+        ax2.set_xlim(0.0, right)
     ax1.axhline(1.0, color=C_SET, lw=1.0, ls=":")
     ax1.set_title(f"{rec.exp_id}: predicted responses of the candidate gains", fontsize=13)
     ax1.set_ylabel("response to a unit setpoint step", fontsize=11)
@@ -461,8 +470,7 @@ def _reanalyze(rec: ExperimentRecord):
 def _session_header(sess: SessionRecord) -> list[str]:
     m = sess.manifest
     dev = m.get("device") if isinstance(m.get("device"), dict) else {"device": m.get("device")}
-    kills = [e for e in sess.events if str(e.get("kind", "")).lower().startswith("kill")
-             and not str(e.get("kind", "")).lower().startswith("kill_clear")]
+    kills = [e for e in sess.events if is_kill(e.get("kind", ""))]
     parts = [f"<h1>tetherloop session {_esc(sess.name)}</h1>"]
     outcome = m.get("outcome") or "not closed (the program stopped or is still running)"
     cls = "bad" if kills or not m.get("outcome") else "ok"
@@ -512,8 +520,7 @@ def _session_header(sess: SessionRecord) -> list[str]:
             rows.append([round(float(h) - float(t0), 3) if h is not None else None,
                          ev.get("device_time_us"), kind,
                          ", ".join(f"{k}={_fmt(v)}" for k, v in extra.items())])
-            classes.append("kill" if kind.lower().startswith("kill")
-                           and not kind.lower().startswith("kill_clear") else "")
+            classes.append("kill" if is_kill(kind) else "")
         parts.append("<h3>Events</h3>"
                      + _table(["host time [s]", "device time [us]", "kind", "details"], rows,
                               classes))

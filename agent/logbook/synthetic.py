@@ -32,7 +32,8 @@ def _f32(x) -> float:
 
 
 def _telemetry(k: int, t_us: int, tag: int, main: AxisSample, state: int, rng) -> Telemetry:
-    idle = AxisSample(0 if main.axis == 1 else 1, 0, 0.0, _f32(rng.normal(0, 0.003)), _f32(0.001 * rng.normal()), 0)
+    idle = AxisSample(0 if main.axis == 1 else 1, 0, 0.0, _f32(rng.normal(0, 0.003)),
+                      _f32(0.001 * rng.normal()), 0)
     return Telemetry(time_us=t_us, counter=k, state=state, tag=tag, axes=(main, idle))
 
 

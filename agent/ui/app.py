@@ -62,6 +62,14 @@ class StandNotice(Message):
         self.payload = payload
 
 
+class ProgressNotice(Message):
+    """A workflows.Progress event from the worker thread."""
+
+    def __init__(self, progress) -> None:
+        super().__init__()
+        self.progress = progress
+
+
 class StandConsole(App):
     CSS_PATH = "console.tcss"
     TITLE = "tetherloop stand console"
@@ -214,6 +222,12 @@ class StandConsole(App):
         return rate
 
     def _tick(self) -> None:
+        try:
+            self._refresh_all()
+        except Exception as exc:  # a drawing problem (or shutdown) must never stop the timer
+            self.log.error(f"refresh failed: {exc!r}")
+
+    def _refresh_all(self) -> None:
         stand = self.stand
         strip = self.main.query_one(StateStrip)
         if stand is None:
@@ -481,10 +495,11 @@ class StandConsole(App):
         self.call_from_thread(self._run_done, result, error)
 
     def _progress_from_worker(self, p) -> None:
-        try:
-            self.call_from_thread(self.main.query_one(RunPane).progress, p)
-        except RuntimeError:  # the console is closing; the workflow carries on to its end
-            pass
+        # never block the workflow on the screen: post (thread-safe) and carry on
+        self.post_message(ProgressNotice(p))
+
+    def on_progress_notice(self, msg: "ProgressNotice") -> None:
+        self.main.query_one(RunPane).progress(msg.progress)
 
     def _restore_scope(self, stand) -> None:
         try:

@@ -75,6 +75,7 @@ class PlanPane(VerticalScroll):
                                      for lv in levels)
             for lp in loops:
                 sl.add_option((lp.key, lp.key, True))  # every loop, as the CLI's default plan
+            sl.highlighted = 0
         self.validate_plan()
 
     def select_loops(self, keys) -> None:
