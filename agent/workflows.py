@@ -108,7 +108,8 @@ class LoopResult:
             d["chosen"] = self.chosen.rule
         d["previous_gains"] = self.previous_gains
         d["applied_gains"] = self.applied_gains
-        d["verification"] = self.verification
+        d["verification"] = ({k: v for k, v in self.verification.items() if k != "predicted"}
+                             if self.verification else None)  # the curve stays in the log
         d["bandwidth_rad_s"] = _f(self.bandwidth_rad_s)
         return d
 
@@ -385,7 +386,8 @@ def relay_experiment(stand: Stand, lp: LoopPlan, plan: Plan, *, trim: float, hys
                       "hysteresis": hysteresis, "bias": decision.bias, "setpoint": setpoint,
                       "sample_time_s": 1.0 / stand.info.loop_rate_hz,
                       "sampling_delay_s": SAMPLING_DELAY_TICKS / stand.info.loop_rate_hz,
-                      "controller": lp.controller, "ms_target": lp.ms_target}
+                      "controller": lp.controller, "ms_target": lp.ms_target,
+                      "output_limit": stand.session.values.get(f"{lp.axis}.{lp.loop}.out_limit")}
     summary = {"periods_after_ramp": decision.periods_after_ramp,
                "amplitude_seen": decision.amplitude_seen, "period_s": decision.period_s,
                "adjustments": adjustments, "note": decision.reason,
@@ -516,9 +518,12 @@ def verify_step(stand: Stand, lp: LoopPlan, plan: Plan, cand, *, setpoint: float
         if pr and not (pr / f <= measured["rise_s"] <= pr * f):
             problems.append(f"rise time {measured['rise_s']:.3g} s is outside "
                             f"[{pr / f:.3g}, {pr * f:.3g}] s around the predicted {pr:.3g} s")
+    curve = {"t_s": [float(x) for x in pred.t_s],
+             "y": [float(setpoint + step * v) for v in pred.y_setpoint], "t_offset_s": step_at}
     result = {"step": step, "setpoint": setpoint, "step_at_s": step_at, "measured": measured,
-              "predicted": predicted, "passed": not problems, "problems": problems,
-              "experiment": exp_id}
+              "metrics": measured, "predicted_metrics": predicted, "predicted": curve,
+              "passed": not problems, "problems": problems, "experiment": exp_id,
+              "exp_id": exp_id}
     _end_experiment_log(stand, exp, result)
     return result
 
@@ -542,18 +547,15 @@ def tune_loop(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = _qu
     res.experiments.append(run["exp_id"])
     res.relay, res.cross_coupling = run["relay"], run["cross_coupling"]
     progress(Progress("analysis", f"{lp.key}: identifying the loop", lp.key))
-    from .logbook.records import relay_record_from_rows
+    from .logbook.records import relay_record_from_rows, tune_kwargs
+    # the same two calls the offline re-analysis makes, so a log reproduces this result
     record = relay_record_from_rows(run["columns"], run["analysis_input"])
     result_doc: dict[str, Any] = {"analysis_input": run["analysis_input"], "relay": res.relay,
                                   "cross_coupling": res.cross_coupling,
                                   "noise": noise}
     try:
         res.identification = analysis.identify(record)
-        res.tuning = analysis.tune(res.identification, controller=lp.controller,
-                                   ms_target=lp.ms_target,
-                                   sample_time_s=1.0 / stand.info.loop_rate_hz,
-                                   output_limit=stand.session.values.get(
-                                       f"{lp.axis}.{lp.loop}.out_limit"))
+        res.tuning = analysis.tune(res.identification, **tune_kwargs(run["analysis_input"]))
     except analysis.RecordError as exc:
         result_doc["error"] = str(exc)
         _end_experiment_log(stand, run["exp"], result_doc)

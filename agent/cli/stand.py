@@ -153,22 +153,27 @@ def _finish(stand, box, interrupted, con, args):
     return result, err, outcome
 
 
-def _summary_table(loops) -> Table:
-    t = Table("loop", "status", "Ku", "Tu [s]", "model", "rule", "kp", "ki", "kd", "Ms",
-              "verify", title="tuning summary")
+def _summary_tables(loops) -> list[Table]:
+    """Two narrow tables (identification, gains) so an 80-column terminal shows them whole."""
+    ident = Table("loop", "status", "Ku", "Tu [s]", "model", "method", title="identification",
+                  title_justify="left")
+    gains = Table("loop", "rule", "kp", "ki", "kd", "Ms", "verification",
+                  title="gains", title_justify="left")
     for lr in loops:
         d = lr.to_dict()
         ver = d.get("verification") or {}
-        meas = (ver.get("measured") or {})
+        meas = ver.get("measured") or {}
         vtext = ("pass" if ver.get("passed") else "FAIL") if ver else "-"
         if ver and meas.get("overshoot") is not None:
-            vtext += f" os {meas['overshoot']:.0%}"
+            vtext += f" ({meas['overshoot']:.0%} os)"
         ch = lr.chosen
-        t.add_row(lr.key, lr.status, _g(d.get("ultimate_gain")), _g(d.get("ultimate_period_s")),
-                  (d.get("model") or {}).get("kind", "-"), ch.rule if ch else "-",
-                  _g(ch.kp if ch else None), _g(ch.ki if ch else None),
-                  _g(ch.kd if ch else None), _g(ch.ms if ch else None), vtext)
-    return t
+        ident.add_row(lr.key, lr.status, _g(d.get("ultimate_gain")),
+                      _g(d.get("ultimate_period_s")), (d.get("model") or {}).get("kind", "-"),
+                      d.get("ultimate_method", "-"))
+        gains.add_row(lr.key, ch.rule if ch else "-", _g(ch.kp if ch else None),
+                      _g(ch.ki if ch else None), _g(ch.kd if ch else None),
+                      _g(ch.ms if ch else None), vtext)
+    return [ident, gains]
 
 
 def _g(x) -> str:
@@ -221,7 +226,8 @@ def cmd_tune(args) -> int:
         d["kills"] = stand.kills
         print(json.dumps(d, indent=2))
     else:
-        con.print(_summary_table([result]))
+        for t in _summary_tables([result]):
+            con.print(t)
         con.print(f"log: {session_path}")
     return 0 if result.status in ("tuned", "applied", "verified") else 4
 
@@ -271,7 +277,8 @@ def cmd_autotune(args, *, mock=None, port=None) -> int:
         d["report"] = report
         print(json.dumps(d, indent=2))
     else:
-        con.print(_summary_table(result.loops))
+        for t in _summary_tables(result.loops):
+            con.print(t)
         for c in result.cascade:
             con.print(("[green]" if c["ok"] else "[yellow]") + c["message"] + "[/]")
         con.print(f"outcome: [bold]{result.outcome}[/] {result.message}")
