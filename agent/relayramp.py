@@ -10,9 +10,10 @@ seen after the last change, the amplitude is scaled by target/measured (bounded 
 step and by the ceiling) until the oscillation amplitude is within the tolerance of the target.
 Bias: a relay on a loop with a load (gravity on heave, a centre-of-gravity offset) is centred on
 the trim when the mean relay output over a whole period equals its centre, so the bias is moved
-to that mean (for an integrating loop it is exactly the trim that holds the body still) — the
-whole way for a large offset, half-way for a small one, at most ``max_bias_moves`` times, since
-noise on the switching instants makes one period's mean noisy.
+towards that mean (for an integrating loop it is exactly the trim that holds the body still):
+half-way first, then by the secant through the last two tries, at most ``max_bias_moves`` times;
+the mean is taken over two whole periods since noise on the switching instants makes one
+period's mean noisy.
 Convergence: after the last change one period is discarded as transient; then the oscillation is
 converged once three consecutive periods agree within ``period_tol`` and ``amp_tol`` — at most
 four periods after the ramp when the loop is linear and quiet.
@@ -20,7 +21,7 @@ four periods after the ramp when the loop is linear and quiet.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -49,12 +50,13 @@ class RelaySupervisor:
     settle_periods: int = 1
     stable_periods: int = 3
     max_periods_after_ramp: int = 10
-    bias_tol: float = 0.08  # re-centre when |mean u - bias| > bias_tol * amplitude
+    bias_tol: float = 0.06  # re-centre when |mean u - bias| > bias_tol * amplitude
     max_bias_moves: int = 4  # after this many re-centrings the bias is left alone
     no_switch_s: float = 3.0  # fail when the relay has not switched for this long
     _adjust_index: int = 0  # sample index of the last change
     adjustments: int = 0
     bias_moves: int = 0
+    _bias_points: list = field(default_factory=list)
 
     def decide(self, t_s: np.ndarray, y: np.ndarray, u: np.ndarray, relay: np.ndarray) -> Decision:
         n = len(t_s)
@@ -84,6 +86,7 @@ class RelaySupervisor:
             a_j = float(amps[j])
             need_amp = (a_j < lo and not at_ceiling) or a_j > hi
             if need_amp:
+                self._bias_points.clear()  # the residual depends on the amplitude
                 return self._adjust(n, True, False, a_j, self.bias, float(periods[j]))
             if j >= 1 and self.bias_moves < self.max_bias_moves:
                 # bias from the mean over the last two whole periods (one period's mean is
@@ -121,10 +124,21 @@ class RelaySupervisor:
             new_amp = float(min(self.amplitude * scale, self.ceiling))
         new_bias = self.bias
         if need_bias:
-            # one period's mean is noisy when noise moves the switching instants: take the whole
-            # step only for a large offset, half of it otherwise
-            gap = mean_u - self.bias
-            new_bias = mean_u if abs(gap) > 0.25 * self.amplitude else self.bias + 0.5 * gap
+            # The residual r(b) = mean(u) - b is zero when the relay is centred. For an
+            # integrating loop r falls one-for-one with b, but a loop with a static gain reacts
+            # more strongly (the oscillation's centre moves too), so a full step would
+            # overshoot: the first move goes half-way, later ones use the secant through the
+            # last two (b, r) points, clipped to +/- one relay amplitude.
+            r = mean_u - self.bias
+            prev = self._bias_points[-1] if self._bias_points else None
+            step = 0.5 * r
+            if prev is not None and prev[0] != self.bias and prev[1] != r:
+                slope = (r - prev[1]) / (self.bias - prev[0])
+                if slope < 0:
+                    step = -r / slope
+            step = float(np.clip(step, -self.amplitude, self.amplitude))
+            self._bias_points.append((self.bias, r))
+            new_bias = self.bias + step
             self.bias_moves += 1
         self.amplitude, self.bias = new_amp, new_bias
         self._adjust_index = n - 1

@@ -82,3 +82,14 @@ def test_no_oscillation_is_reported():
     dec, _, _ = run_loop(sup, K=0.0, t_max=2.0)
     assert dec is not None and dec.action == "fail"
     assert "did not switch" in dec.reason
+
+
+@pytest.mark.parametrize("load", [0.0, -0.1, 0.15])
+def test_bias_converges_on_a_loop_with_static_gain(load):
+    # First order with delay, K=2: the relay is centred when its mean output cancels the input
+    # load, bias = -load (common practice, no source: the trim cancels the load).
+    sup = RelaySupervisor(amplitude=0.3, bias=0.0, target=0.1, ceiling=0.3)
+    dec, t, y = run_loop(sup, K=2.0, T=0.5, L=0.2, load=load, t_max=60.0)
+    assert dec is not None and dec.action == "converged", dec
+    assert dec.bias == pytest.approx(-load, abs=0.06 * 0.3 + 1e-9)
+    assert sup.bias_moves <= sup.max_bias_moves
