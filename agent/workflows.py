@@ -381,6 +381,14 @@ def relay_experiment(stand: Stand, lp: LoopPlan, plan: Plan, *, trim: float, hys
     sel_axis = (cols["axis"] == axis_i) & (cols["loop"] == loop_i)
     t_axis = cols["time_us"][sel_axis]
     a, b = decision.window
+    tick_us = 1e6 / stand.info.loop_rate_hz
+    gaps = int(np.count_nonzero(np.diff(t_axis[a:b + 1]) > 1.5 * tick_us))
+    if gaps:
+        msg = (f"{lp.key}: {gaps} telemetry gap(s) in the analysed periods: samples were lost "
+               "on the link (the host did not keep up). Use a faster link, or a slower "
+               "simulation clock for the mock.")
+        _end_experiment_log(stand, exp, {"error": msg, "relay": {"adjustments": adjustments}})
+        raise WorkflowError(msg)
     analysis_input = {"axis": axis_i, "loop": loop_i, "t_start_us": int(t_axis[a]),
                       "t_end_us": int(t_axis[b]), "amplitude": decision.amplitude,
                       "hysteresis": hysteresis, "bias": decision.bias, "setpoint": setpoint,
