@@ -7,10 +7,15 @@ class CobsError(ValueError):
     """The bytes are not a valid COBS encoding."""
 
 
+_CODE = tuple(bytes([n + 1]) for n in range(254))  # code byte of a run of n non-zero bytes
+
+
 def encode(data: bytes) -> bytes:
     """COBS-encode ``data``; the result holds no zero byte (the delimiter is not appended)."""
-    out = bytearray()
     parts = bytes(data).split(b"\x00")
+    if len(data) < 254:  # no run can reach 254 bytes: every block is code + run (fast path)
+        return b"".join([_CODE[len(part)] + part for part in parts])
+    out = bytearray()
     last = len(parts) - 1
     for i, part in enumerate(parts):
         while len(part) >= 254:
@@ -28,25 +33,25 @@ def decode(data: bytes) -> bytes:
     """Decode one COBS block sequence (without its delimiter). Raises CobsError if malformed.
 
     Fast path: with no 0xFF code the decoded bytes are the encoded ones with every code byte after
-    the first turned into a zero, so only the chain of code bytes is walked.
+    the first turned into a zero, so only the chain of code bytes is walked. Data shorter than 254
+    bytes (every protocol frame) never has a 0xFF code; anything else takes the general path.
     """
     n = len(data)
     if 0 in data:
         raise CobsError("zero byte inside a COBS frame")
     out = bytearray(data)
+    out.append(0)  # slot n: where a well-formed chain of code bytes ends exactly
     i = 0
-    while i < n:
-        code = data[i]
-        if code == 0xFF:
-            return _decode_general(data)
-        j = i + code
-        if j > n:
-            raise CobsError("COBS block runs past the end of the frame")
-        if j < n:
-            out[j] = 0
-        i = j
-    del out[:1]
-    return bytes(out)
+    try:
+        while i < n:
+            code = data[i]
+            if code == 0xFF:
+                return _decode_general(data)
+            i += code
+            out[i] = 0  # IndexError when the chain runs past slot n
+    except IndexError:
+        raise CobsError("COBS block runs past the end of the frame") from None
+    return bytes(out[1:n])
 
 
 def _decode_general(data: bytes) -> bytes:
