@@ -85,7 +85,7 @@ def open_port(port: str | Any, baudrate: int = 921600):
     if not isinstance(port, str):
         return port
     try:
-        ser = serial.serial_for_url(port, baudrate=baudrate, timeout=0.02, write_timeout=1.0,
+        ser = serial.serial_for_url(port, baudrate=baudrate, timeout=0.02, write_timeout=3.0,
                                     do_not_open=True)
         if hasattr(ser, "exclusive") and not port.startswith(("socket://", "loop://", "rfc2217://")):
             ser.exclusive = True

@@ -24,15 +24,36 @@ from .cascade import CascadeCheck, cascade_check
 from .cycles import CycleStats, detect_cycles
 from .identify import Identification, identify
 from .models import Model
-from .predict import StepMetrics, StepPrediction, loop_bandwidth, predict_step, step_metrics
+from .predict import (
+    StepMetrics,
+    StepPrediction,
+    loop_bandwidth,
+    predict_step,
+    step_metrics,
+)
 from .records import RecordError, RelayRecord
 from .simulate import simulate_relay
 from .tuning import Candidate, TuningResult, tune
 from .ultimate import UltimatePoint
 
 __all__ = [
-    "RecordError", "RelayRecord", "UltimatePoint", "Model", "CycleStats", "Identification",
-    "identify", "detect_cycles", "simulate_relay", "Candidate", "StepPrediction", "StepMetrics",
-    "TuningResult", "tune", "step_metrics", "predict_step", "cascade_check", "CascadeCheck",
+    "Candidate",
+    "CascadeCheck",
+    "CycleStats",
+    "Identification",
+    "Model",
+    "RecordError",
+    "RelayRecord",
+    "StepMetrics",
+    "StepPrediction",
+    "TuningResult",
+    "UltimatePoint",
+    "cascade_check",
+    "detect_cycles",
+    "identify",
     "loop_bandwidth",
+    "predict_step",
+    "simulate_relay",
+    "step_metrics",
+    "tune",
 ]

@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["controller_freq", "standard_form", "discretize", "discrete_polys"]
+__all__ = ["controller_freq", "discrete_polys", "discretize", "standard_form"]
 
 
 def controller_freq(kp: float, ki: float, kd: float, tf_s: float, w: np.ndarray) -> np.ndarray:

@@ -22,10 +22,15 @@ import numpy as np
 from .cycles import CycleStats, detect_cycles
 from .models import Model, fit_models, select_model
 from .records import RecordError, RelayRecord, validate_record
-from .ultimate import (UltimatePoint, anchored_crossover, describing_function_point,
-                       first_harmonic, hysteresis_point)
+from .ultimate import (
+    UltimatePoint,
+    anchored_crossover,
+    describing_function_point,
+    first_harmonic,
+    hysteresis_point,
+)
 
-__all__ = ["Identification", "identify", "METHODS"]
+__all__ = ["METHODS", "Identification", "identify"]
 
 METHODS = ("describing_function", "hysteresis_corrected", "first_harmonic", "model_fit")
 
@@ -206,7 +211,7 @@ def identify(record: RelayRecord) -> Identification:
     i0, i1 = cyc.window
 
     # --- models
-    models = fit_models(dt, u, y, per, cyc.amplitude)
+    models = fit_models(dt, u, y, per, cyc.amplitude, u_ref=float(record.bias))
     model = select_model(models, len(y), cyc.amplitude)
     ts_half = 0.5 * dt
     extra = max(float(record.sampling_delay_s) - ts_half, 0.0)

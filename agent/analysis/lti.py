@@ -21,11 +21,11 @@ from scipy import linalg, optimize, signal
 
 __all__ = [
     "DiscreteModel",
-    "zoh_discretize",
-    "lsim_zoh",
-    "freq_response",
-    "phase_crossover",
     "as_tf",
+    "freq_response",
+    "lsim_zoh",
+    "phase_crossover",
+    "zoh_discretize",
 ]
 
 

@@ -33,7 +33,7 @@ from scipy import optimize, signal
 
 from .lti import freq_response, phase_crossover, zoh_discretize
 
-__all__ = ["Model", "fit_model", "fit_models", "select_model", "MODEL_KINDS"]
+__all__ = ["MODEL_KINDS", "Model", "fit_model", "fit_models", "select_model"]
 
 MODEL_KINDS = ("fopdt", "sopdt", "ipdt")
 
@@ -82,7 +82,7 @@ class Model:
     def freq(self, w: np.ndarray) -> np.ndarray:
         return freq_response(self.tf(), w)
 
-    def with_delay(self, delay_s: float, basis: str) -> "Model":
+    def with_delay(self, delay_s: float, basis: str) -> Model:
         p = dict(self.params)
         p["L"] = max(float(delay_s), 0.0)
         return replace(self, params=p, basis=basis,
@@ -123,9 +123,10 @@ class _Fitter:
     ``k0`` is unknown (free modes), for records that do not start at rest."""
 
     def __init__(self, kind: str, dt: float, u: np.ndarray, y: np.ndarray, k0: int,
-                 period_s: float, variant: str = "free"):
+                 period_s: float, variant: str = "free", u_ref: float = 0.0):
         if variant == "rest":
             k0 = 0
+        self.u_ref = u_ref
         self.variant = variant
         self.kind, self.dt, self.k0, self.P = kind, dt, k0, period_s
         self.u_raw = u
@@ -146,23 +147,30 @@ class _Fitter:
         num, den, info = _unit_tf(self.kind, th)
         dm = zoh_discretize(num, den, L, self.dt)
         if self.variant == "rest":
+            # at rest before the first sample with the relay output at its centre u_ref:
+            # y = y0 + K * response(u - u_ref); an integrating plant also needs the unknown
+            # input that held it still (its trim), which enters through its step response
             m = dm.shift
-            w = self.u_raw
-            st = self.step_in
+            w = self.u_raw - self.u_ref
             if m > 0:
                 w = np.concatenate([np.zeros(m), w[:-m]])
-                st = np.concatenate([np.zeros(m), st[:-m]])
             resp = signal.lfilter(dm.b, dm.a, w)[:: self.q]
-            stp = signal.lfilter(dm.b, dm.a, st)[:: self.q]
-            X = np.column_stack([resp, stp, self.ones])
+            cols = [resp, self.ones]
+            if self.kind == "ipdt":
+                st = self.step_in
+                if m > 0:
+                    st = np.concatenate([np.zeros(m), st[:-m]])
+                cols.append(signal.lfilter(dm.b, dm.a, st)[:: self.q])
+            X = np.column_stack(cols)
             scale = np.sqrt(np.sum(X * X, axis=0))
             scale[scale == 0] = 1.0
             Xs = X / scale
             coef, *_ = np.linalg.lstsq(Xs.T @ Xs, Xs.T @ self.ybar, rcond=1e-13)
             coef = coef / scale
             r = self.ybar - X @ coef
-            # report offset/trim in the same layout as the free variant: [K, offset, ..., ramp]
-            return r, np.array([coef[0], coef[2], -coef[1]]), info, L
+            c_step = coef[2] if self.kind == "ipdt" else 0.0
+            # same layout as the free variant: [K, offset, ..., step coefficient]
+            return r, np.array([coef[0], coef[1], c_step]), info, L
         w = self.uc
         if dm.shift > 0:
             w = np.concatenate([np.full(dm.shift, self.uc[0]), self.uc[:-dm.shift]])
@@ -208,7 +216,8 @@ def _grid(kind: str) -> list[np.ndarray]:
 
 
 def fit_model(kind: str, dt: float, u: np.ndarray, y: np.ndarray, period_s: float,
-              amplitude: float, k0: int | None = None, variant: str = "free") -> Model:
+              amplitude: float, k0: int | None = None, variant: str = "free",
+              u_ref: float = 0.0) -> Model:
     """Fit one model family to a relay record by whole-waveform output-error least squares.
 
     Parameters
@@ -228,7 +237,7 @@ def fit_model(kind: str, dt: float, u: np.ndarray, y: np.ndarray, period_s: floa
     if k0 is None:
         k0 = int(np.ceil(0.6 * period_s / dt)) + 2
     k0 = min(k0, len(y) // 2)
-    f = _Fitter(kind, dt, u, y, k0, period_s, variant)
+    f = _Fitter(kind, dt, u, y, k0, period_s, variant, u_ref)
     # time constants are fitted relative to the period
     lnP = np.log(period_s)
     lo_T, hi_T = lnP + np.log(1e-3), lnP + np.log(1e3)
@@ -262,8 +271,8 @@ def fit_model(kind: str, dt: float, u: np.ndarray, y: np.ndarray, period_s: floa
     params = {"K": K, **{k: float(v) for k, v in info.items()}, "L": float(L)}
     extras: dict[str, float] = {"offset": float(coef[1]), "rest": float(variant == "rest")}
     if K != 0:
-        if variant == "rest":
-            extras["u_before"] = float(-coef[2] / K)  # input that held the plant at rest
+        if variant == "rest" and kind == "ipdt":
+            extras["trim"] = float(u_ref - coef[2] / K)  # input that held the plant still
         elif kind == "ipdt":
             # ramp coefficient = -K * (trim - mean(u)) -> trim
             extras["trim"] = float(np.mean(u) - coef[-1] / K)
@@ -281,16 +290,17 @@ def fit_model(kind: str, dt: float, u: np.ndarray, y: np.ndarray, period_s: floa
 
 
 def fit_models(dt: float, u: np.ndarray, y: np.ndarray, period_s: float, amplitude: float,
-               kinds: tuple[str, ...] = MODEL_KINDS) -> dict[str, Model]:
+               kinds: tuple[str, ...] = MODEL_KINDS, u_ref: float = 0.0) -> dict[str, Model]:
     """Fit every family in ``kinds`` (see :func:`fit_model`), each twice: assuming the record
-    starts at rest and with a free initial state. The at-rest fit also sees the start-up, which
+    starts at rest with the relay output at ``u_ref`` before the first sample (the relay
+    centre) and with a free initial state. The at-rest fit also sees the start-up, which
     pins the low-frequency gain; it is kept unless its residual is clearly worse (more than
     twice that of the free fit and by more than 1 % of the amplitude), i.e. unless the record
     did not start at rest. The free fit is skipped when the at-rest fit is already within
     0.5 % of the amplitude."""
     out = {}
     for k in kinds:
-        rest = fit_model(k, dt, u, y, period_s, amplitude, variant="rest")
+        rest = fit_model(k, dt, u, y, period_s, amplitude, variant="rest", u_ref=u_ref)
         if rest.rel_rmse <= 0.005:
             out[k] = rest  # already reproduces the record: no need to try a free start
             continue

@@ -19,8 +19,14 @@ from scipy import signal
 from .controller import controller_freq, discrete_polys
 from .lti import as_tf, freq_response, phase_crossover, zoh_discretize
 
-__all__ = ["StepMetrics", "StepPrediction", "step_metrics", "predict_step", "loop_bandwidth",
-           "LoopSim"]
+__all__ = [
+    "LoopSim",
+    "StepMetrics",
+    "StepPrediction",
+    "loop_bandwidth",
+    "predict_step",
+    "step_metrics",
+]
 
 
 @dataclass(frozen=True)
@@ -159,10 +165,20 @@ class LoopSim:
             y = signal.lfilter(num_d, char, np.ones(n))
         if not np.all(np.isfinite(y)):
             return float("inf"), False
-        tail = y[int(0.8 * n):]
+        iae = float(np.sum(np.abs(y)) * self.h)
+        k = int(0.8 * n)
+        tail = y[k:]
         peak = float(np.max(np.abs(y))) or 1.0
-        settled = float(np.ptp(tail)) < 0.02 * peak
-        return float(np.sum(np.abs(y)) * self.h), settled
+        if float(np.ptp(tail)) < 0.02 * peak:
+            return iae, True
+        # slow but converging without oscillation (a long integral time): add the exponential
+        # tail beyond the horizon, estimated from the decay over the last fifth
+        y0, y1 = tail[0], tail[-1]
+        if ki > 0 and np.all(np.sign(tail) == np.sign(y1)) and 0 < abs(y1) < abs(y0) and \
+                np.all(np.abs(np.diff(tail)) * np.sign(-y1) * np.sign(np.diff(tail)) >= 0):
+            tau = (len(tail) - 1) * self.h / np.log(abs(y0) / abs(y1))
+            return iae + abs(y1) * tau, True
+        return iae, False
 
     def default_horizon(self, ki: float, kp: float) -> float:
         ti = kp / ki if ki > 0 else 0.0
@@ -190,9 +206,8 @@ def predict_step(model, cand, sample_time_s: float | None = None,
         ref = y_final if abs(y_final) > 1e-12 else 1.0
     met = step_metrics(t, ysp, 0.0, ref)
     iae_sp = float(np.sum(np.abs(1.0 - ysp)) * sim.h)
-    iae_ld = float(np.sum(np.abs(yld)) * sim.h)
-    tail = yld[int(0.8 * len(yld)):]
-    settled = float(np.ptp(tail)) < 0.02 * (float(np.max(np.abs(yld))) or 1.0)
+    # load IAE with the same tail treatment as the design (slow exponential tails included)
+    iae_ld, settled = sim.load_iae(kp, ki, kd, tf_s, horizon_s)
     return StepPrediction(met.overshoot, met.rise_s, met.settling_s, iae_sp, iae_ld, t, ysp, yld,
                           float(np.max(np.abs(yld))), bool(settled))
 

@@ -14,7 +14,7 @@ from scipy import optimize
 from .controller import controller_freq
 from .lti import _low_freq_phase, as_tf, freq_response, phase_crossover
 
-__all__ = ["frequency_grid", "sensitivity_peak", "margins"]
+__all__ = ["frequency_grid", "margins", "sensitivity_peak"]
 
 
 def frequency_grid(model, n: int = 1500) -> np.ndarray:
@@ -70,7 +70,7 @@ def margins(model, kp: float, ki: float, kd: float, tf_s: float,
 
     gm, wpc = np.inf, np.nan
     # crossings of -180° - k*360°
-    for k in range(0, 4):
+    for k in range(4):
         target = -np.pi - 2 * np.pi * k
         idx = np.nonzero(np.diff(np.sign(ph - target)) != 0)[0]
         for i in idx:

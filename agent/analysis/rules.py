@@ -9,8 +9,13 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["ziegler_nichols", "tyreus_luyben", "astrom_hagglund_phase_margin", "amigo",
-           "amigo_setpoint_weight"]
+__all__ = [
+    "amigo",
+    "amigo_setpoint_weight",
+    "astrom_hagglund_phase_margin",
+    "tyreus_luyben",
+    "ziegler_nichols",
+]
 
 
 def _parallel(K: float, Ti: float, Td: float) -> tuple[float, float, float]:

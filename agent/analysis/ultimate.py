@@ -25,18 +25,18 @@ model only the local slope, so model errors enter to second order. The same cons
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Callable
 
 import numpy as np
 from scipy import optimize
 
 __all__ = [
     "UltimatePoint",
-    "first_harmonic",
-    "describing_function_point",
-    "hysteresis_point",
     "anchored_crossover",
+    "describing_function_point",
+    "first_harmonic",
+    "hysteresis_point",
 ]
 
 

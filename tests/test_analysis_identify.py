@@ -1,0 +1,162 @@
+"""Identification from relay records: exact limit cycles, ultimate points, degenerate records."""
+
+import json
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from agent.analysis import RecordError, RelayRecord, identify, simulate_relay
+from agent.analysis.lti import phase_crossover
+
+
+def yu_fopdt_record(K=2.0, T=1.0, L=0.4, d=0.5, n_half=200, n_periods=8):
+    """Exact steady relay limit cycle of K e^{-Ls}/(Ts+1) under an ideal relay ±d.
+
+    Yu, C.-C. (2006), Autotuning of PID Controllers: A Relay Feedback Approach, 2nd ed.:
+    a = K d (1 - e^{-L/T}), half-period h = T ln(2 e^{L/T} - 1). The relay switches exactly on
+    sample instants (dt = h / n_half), so the held samples of u are the continuous relay output.
+    """
+    h = T * np.log(2 * np.exp(L / T) - 1)
+    a = K * d * (1 - np.exp(-L / T))
+    dt = h / n_half
+    t = np.arange(2 * n_half * n_periods + 1) * dt
+    ph = np.mod(t + 1e-9 * dt, 2 * h)
+    u = np.where(ph < h, d, -d)
+    s = np.mod(t - L, 2 * h)
+    y = np.where(s < h, K * d - (K * d + a) * np.exp(-s / T),
+                 -K * d + (K * d + a) * np.exp(-(s - h) / T))
+    rec = RelayRecord(t_s=t, y=y, u=u, setpoint=0.0, amplitude=d, hysteresis=0.0, bias=0.0,
+                      sample_time_s=dt, sampling_delay_s=0.0)
+    return rec, a, 2 * h
+
+
+def test_yu_exact_fopdt_limit_cycle_recovers_k_t_l():
+    # Yu (2006), exact FOPDT relay limit cycle: identification recovers K, T, L within 1 %
+    K, T, L = 2.0, 1.0, 0.4
+    rec, a, P = yu_fopdt_record(K, T, L)
+    ident = identify(rec)
+    m = ident.models["fopdt"]
+    assert m.params["K"] == pytest.approx(K, rel=0.01)
+    assert m.params["T"] == pytest.approx(T, rel=0.01)
+    assert m.params["L"] == pytest.approx(L, rel=0.01)
+    assert ident.model.kind == "fopdt"
+    # cycle detection reproduces Yu's amplitude and period (peaks fall between samples: 0.5 %)
+    assert ident.cycles.period_s == pytest.approx(P, rel=1e-3)
+    assert ident.cycles.amplitude == pytest.approx(a, rel=5e-3)
+    assert ident.cycles.stationary
+    assert abs(ident.cycles.asymmetry) < 0.01
+
+
+def test_ultimate_point_of_third_order_lag_from_relay():
+    # textbook: 1/(s+1)^3 has Ku = 8, wu = sqrt(3) rad/s (value from memory; python-control
+    # margins agree, see test_analysis_lti.py)
+    dt = 0.01
+    rec = simulate_relay([1], [1, 3, 3, 1], 0.0, 1.0, 0.0, 0.0, dt, 60.0)
+    ident = identify(rec)
+    best = ident.best_plant
+    assert best.basis == "plant"
+    assert best.ku == pytest.approx(8.0, rel=0.02)
+    assert best.tu_s == pytest.approx(2 * np.pi / np.sqrt(3), rel=0.01)
+    # the classic describing function is reported too, and is the least accurate here
+    df = ident.ultimate_plant["describing_function"]
+    assert abs(df.ku / 8 - 1) > abs(best.ku / 8 - 1)
+    assert set(ident.ultimate) == {"describing_function", "hysteresis_corrected",
+                                   "first_harmonic", "model_fit"}
+    assert all(p.basis == "loop" for p in ident.ultimate.values())
+
+
+def test_loop_basis_includes_sampling_delay():
+    # common practice, no source: the hold adds about half a tick, so the loop as the
+    # controller sees it has a lower ultimate frequency than the plant
+    rec = simulate_relay([45.0], [0.025, 1, 0], 0.003, 0.1, 0.0, 0.0, 0.001, 1.0)
+    ident = identify(rec)
+    loop, plant = ident.ultimate["model_fit"], ident.ultimate_plant["model_fit"]
+    assert loop.tu_s > plant.tu_s
+    ku_l, wu_l = phase_crossover(([45.0], [0.025, 1, 0], 0.003 + 0.0005))
+    ku_p, wu_p = phase_crossover(([45.0], [0.025, 1, 0], 0.003))
+    assert loop.ku == pytest.approx(ku_l, rel=0.01)
+    assert plant.ku == pytest.approx(ku_p, rel=0.01)
+    assert plant.tu_s == pytest.approx(2 * np.pi / wu_p, rel=0.005)
+
+
+def test_integrating_plant_with_load_reports_asymmetry_and_trim():
+    # GUIDE field note / common practice: a load on an integrating loop makes the half-periods
+    # unequal; the mean relay output over whole periods is the trim (= minus the load)
+    load = -0.03
+    rec = simulate_relay([8.0], [0.04, 1, 0], 0.01, 0.1, 0.0, 0.0, 0.002, 3.0, load=load)
+    ident = identify(rec)
+    assert ident.model.kind == "ipdt"
+    assert ident.static_gain is None
+    assert abs(ident.cycles.asymmetry) > 0.1
+    assert ident.bias_estimate == pytest.approx(-load, abs=0.002)
+    assert any("half-periods differ" in w for w in ident.warnings)
+
+
+def test_to_dict_is_json_ready():
+    rec = simulate_relay([1], [1, 1], 0.5, 1.0, 0.02, 0.0, 0.02, 16.0, noise_std=0.005)
+    d = identify(rec).to_dict()
+    text = json.dumps(d)
+    assert "model_fit" in text and d["best"]["basis"] == "loop"
+
+
+def _base(**kw):
+    rec = simulate_relay([1], [1, 1], 0.5, 1.0, 0.0, 0.0, 0.01, 20.0)
+    fields = dict(t_s=rec.t_s, y=rec.y, u=rec.u, setpoint=0.0, amplitude=1.0, hysteresis=0.0,
+                  bias=0.0, sample_time_s=0.01, sampling_delay_s=0.005)
+    fields.update(kw)
+    return RelayRecord(**fields)
+
+
+@pytest.mark.parametrize("kw, words", [
+    (dict(u=np.full(2001, 1.0)), "never switched"),
+    (dict(y=np.where(np.arange(2001) == 500, np.nan, 0.1 * np.sin(np.arange(2001) * 0.05))),
+     "non-finite"),
+    (dict(t_s=np.arange(10) * 0.01, y=np.zeros(10), u=np.ones(10)), "only 10 samples"),
+    (dict(y=np.zeros(1999)), "different lengths"),
+    (dict(sample_time_s=0.02), "sample_time_s"),
+    (dict(amplitude=0.0), "amplitude"),
+])
+def test_degenerate_records_give_reasons(kw, words):
+    # common practice, no source: unusable records raise RecordError with a plain reason
+    with pytest.raises(RecordError) as exc:
+        identify(_base(**kw))
+    assert words in str(exc.value)
+    assert str(exc.value).endswith(".")
+
+
+def test_one_cycle_is_too_short():
+    rec = simulate_relay([1], [1, 1], 0.5, 1.0, 0.0, 0.0, 0.01, 2.2)
+    with pytest.raises(RecordError, match="complete oscillation cycle"):
+        identify(rec)
+
+
+def test_clipped_measurement_is_refused():
+    rec = simulate_relay([1], [1, 1], 0.5, 1.0, 0.0, 0.0, 0.01, 20.0)
+    top = 0.6 * np.max(rec.y)
+    clipped = _base(y=np.minimum(rec.y, top), t_s=rec.t_s, u=rec.u)
+    with pytest.raises(RecordError, match="saturated"):
+        identify(clipped)
+
+
+def test_flat_measurement_is_refused():
+    n = 2001
+    u = np.where(np.sin(np.arange(n) * 0.05) > 0, 1.0, -1.0)
+    with pytest.raises(RecordError, match="did not move"):
+        identify(_base(y=np.zeros(n), u=u))
+
+
+@settings(max_examples=3, deadline=None)
+@given(T=st.floats(0.2, 5.0), L=st.floats(0.1, 1.0), K=st.floats(0.5, 3.0))
+def test_fopdt_family_recovered(T, L, K):
+    # in-class plants: the model-fit ultimate point matches the exact crossover of the true
+    # plant (python-control-free check of the same quantity: lti.phase_crossover is checked
+    # against python-control in test_analysis_lti.py)
+    ku0, wu0 = phase_crossover(([K], [T, 1], L))
+    dt = (2 * np.pi / wu0) / 150
+    rec = simulate_relay([K], [T, 1], L, 0.2, 0.0, 0.0, dt, 10 * 2 * np.pi / wu0)
+    ident = identify(rec)
+    p = ident.ultimate_plant["model_fit"]
+    assert p.ku == pytest.approx(ku0, rel=0.01)
+    assert p.tu_s == pytest.approx(2 * np.pi / wu0, rel=0.01)
