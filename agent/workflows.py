@@ -575,7 +575,7 @@ def tune_loop(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = _qu
         raise WorkflowError(f"{lp.key}: the rule {rule!r} gave no candidate for a "
                             f"{lp.controller.upper()} controller")
     res.chosen = chosen[0]
-    res.bandwidth_rad_s = analysis.loop_bandwidth(res.identification.model, res.chosen)
+    res.bandwidth_rad_s = analysis.loop_bandwidth(res.identification.model_loop, res.chosen)
     res.status = "tuned"
     result_doc.update({"identification": res.identification.to_dict(),
                        "tuning": res.tuning.to_dict(), "chosen": res.chosen.to_dict()})
