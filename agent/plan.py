@@ -17,7 +17,7 @@ A plan file looks like this (every key optional except the loops)::
     heave_m = 0.25
     climb_rate_m_s = 1.0
     saturation_s = 1.5
-    max_experiment_s = 60
+    max_experiment_s = 120
 
     [[loop]]
     axis = "roll"             # roll | pitch | yaw | heave
@@ -83,7 +83,7 @@ class LoopPlan:
 class Plan:
     loops: tuple[LoopPlan, ...]
     limits: Limits = field(default_factory=Limits)
-    max_experiment_s: float = 60.0
+    max_experiment_s: float = 120.0
     relay_target: float = 0.3
     verify: bool = True
     apply: bool = True
@@ -149,7 +149,7 @@ def plan_from_dict(data: dict, source: str = "plan") -> Plan:
     values = {k: _num(lim, k, f"{source} [limits]", d, *_LIMIT_RANGES[k])
               for k, d in (("angle_deg", 30.0), ("rate_deg_s", 400.0), ("heave_m", 0.25),
                            ("climb_rate_m_s", 1.0), ("saturation_s", 1.5),
-                           ("max_experiment_s", 60.0))}
+                           ("max_experiment_s", 120.0))}
     limits = Limits(angle_rad=math.radians(values["angle_deg"]),
                     rate_rad_s=math.radians(values["rate_deg_s"]), heave_m=values["heave_m"],
                     climb_rate_m_s=values["climb_rate_m_s"], saturation_s=values["saturation_s"])
@@ -201,10 +201,20 @@ def load_plan(path: str | Path) -> Plan:
     return plan_from_dict(data, source=p.name)
 
 
-def default_plan(device_axes: dict[str, tuple[str, ...]], **overrides) -> Plan:
-    """Every loop the board offers, in cascade order."""
+def default_plan(device_axes: dict[str, tuple[str, ...]], board_settings: dict | None = None,
+                 **overrides) -> Plan:
+    """Every loop the board offers, in cascade order. Without a plan file the kill thresholds are
+    the board's own (its kill.* settings, as its owner configured them) where it has them."""
     loops = [LoopPlan(axis, loop) for axis, levels in device_axes.items() for loop in levels]
-    return replace(Plan(loops=in_cascade_order(loops)), **overrides)
+    limits = Limits()
+    vals = board_settings or {}
+    pick = {"angle_rad": "kill.angle_rad", "rate_rad_s": "kill.rate_rad_s",
+            "heave_m": "kill.heave_m", "saturation_s": "kill.saturation_s"}
+    found = {k: float(vals[name]) for k, name in pick.items()
+             if name in vals and float(vals[name]) > 0}
+    if found:
+        limits = replace(limits, **found)
+    return replace(Plan(loops=in_cascade_order(loops), limits=limits), **overrides)
 
 
 def check_against_device(plan: Plan, device_axes: dict[str, tuple[str, ...]]) -> None:

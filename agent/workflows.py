@@ -307,7 +307,7 @@ def relay_experiment(stand: Stand, lp: LoopPlan, plan: Plan, *, trim: float, hys
     target = plan.relay_target * threshold
     out_limit = stand.session.values.get(f"{lp.axis}.{lp.loop}.out_limit", 1.0)
     ceiling = lp.max_amplitude if lp.max_amplitude is not None else 0.5 * out_limit
-    sup = RelaySupervisor(amplitude=0.1 * ceiling, bias=trim, target=target, ceiling=ceiling)
+    sup = RelaySupervisor(amplitude=0.2 * ceiling, bias=trim, target=target, ceiling=ceiling)
     exp_id = exp_id or f"{lp.axis}-{lp.loop}-relay"
     exp = _start_experiment_log(stand, exp_id, _meta(
         stand, lp, "relay", amplitude=sup.amplitude, hysteresis=hysteresis, bias=trim,

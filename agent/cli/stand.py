@@ -246,7 +246,7 @@ def cmd_autotune(args, *, mock=None, port=None) -> int:
             raise UserError(str(exc)) from None
     stand = _connect(port or args.port, args, mock=mock)
     if plan is None:
-        plan = default_plan(stand.info.axes)
+        plan = default_plan(stand.info.axes, stand.session.values)
     try:
         check_against_device(plan, stand.info.axes)
     except PlanError as exc:
