@@ -32,7 +32,7 @@ class Decision:
     amplitude: float
     bias: float
     reason: str = ""
-    window: tuple[int, int] | None = None  # sample index range of the converged periods
+    window: tuple[int, int] | None = None  # sample indices: every whole period after settling
     periods_after_ramp: int = 0
     amplitude_seen: float = float("nan")
     period_s: float = float("nan")
@@ -109,7 +109,9 @@ class RelaySupervisor:
                         f"not stationary after {j + 1} periods (period spread {p_spread:.1%}, "
                         f"amplitude spread {a_spread:.1%}); analysing the last ones anyway")
                     return Decision("converged", self.amplitude, self.bias, note,
-                                    window=(int(edges[j + 1 - k]), int(edges[j + 1])),
+                                    # every whole period since the settling one: more
+                                    # periods average more noise out
+                                    window=(int(edges[0]), int(edges[j + 1])),
                                     periods_after_ramp=j + 1 + self.settle_periods,
                                     amplitude_seen=float(a.mean()), period_s=float(p.mean()))
         return Decision("wait", self.amplitude, self.bias, amplitude_seen=float(amps[-1]),
