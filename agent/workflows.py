@@ -698,6 +698,13 @@ def cascade_checks(loops: list[LoopResult]) -> list[dict]:
         inner = by_key.get(f"{lr.axis}.rate")
         if inner is None or inner.chosen is None:
             continue
+        if inner.status not in ("verified", "applied", "tuned") or \
+                lr.status not in ("verified", "applied", "tuned"):
+            out.append({"axis": lr.axis, "inner": inner.key, "outer": lr.key, "ratio": None,
+                        "ok": False, "message": f"{lr.axis}: bandwidth ratio not judged — "
+                        f"{inner.key} is {inner.status}, {lr.key} is {lr.status}, so the gains "
+                        "on the board are not the ones designed"})
+            continue
         chk = analysis.cascade_check(inner.bandwidth_rad_s, lr.bandwidth_rad_s)
         out.append({"axis": lr.axis, "inner": inner.key, "outer": lr.key,
                     "ratio": _f(chk.ratio), "ok": bool(chk.ok), "message": chk.message})
