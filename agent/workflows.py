@@ -238,6 +238,15 @@ def _idle_telemetry(stand: Stand, lp: LoopPlan) -> None:
         pass
 
 
+def _end_run(stand: Stand, tag: int, lp: LoopPlan) -> None:
+    """An experiment is over (done, failed or killed): monitor off, board told, logging off."""
+    if stand.monitor is not None:
+        stand.monitor.active = False
+    _stop_quietly(stand, tag)
+    stand.stop_recording()
+    _idle_telemetry(stand, lp)
+
+
 def _stop_quietly(stand: Stand, tag: int) -> None:
     try:
         if stand.link.lost_reason is None:
@@ -371,11 +380,7 @@ def relay_experiment(stand: Stand, lp: LoopPlan, plan: Plan, *, trim: float, hys
             _end_experiment_log(stand, exp, {"error": str(exc), "adjustments": adjustments})
             raise
     finally:
-        if stand.monitor is not None:
-            stand.monitor.active = False
-        _stop_quietly(stand, tag)
-        stand.stop_recording()
-        _idle_telemetry(stand, lp)
+        _end_run(stand, tag, lp)
     stand.check_kill()
     cols = stand.buffer.columns()
     sel_axis = (cols["axis"] == axis_i) & (cols["loop"] == loop_i)
@@ -496,11 +501,7 @@ def verify_step(stand: Stand, lp: LoopPlan, plan: Plan, cand, *, setpoint: float
     try:
         _run_for_device_time(stand, stop, axis_i, duration, 60 + 10 * duration)
     finally:
-        if stand.monitor is not None:
-            stand.monitor.active = False
-        _stop_quietly(stand, tag)
-        stand.stop_recording()
-        _idle_telemetry(stand, lp)
+        _end_run(stand, tag, lp)
     stand.check_kill()
     cols = stand.buffer.axis(axis_i)
     sel = cols["loop"] == loop_i

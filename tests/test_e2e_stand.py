@@ -34,6 +34,16 @@ def exact_ultimate(num, den, delay_s):
     return float(gm), 2 * math.pi / float(wcg)
 
 
+def start_tune(h, log_dir, axis, loop, **popen):
+    """`tetherloop tune` on the mock's pty in a child process; returns once its relay runs."""
+    env = dict(os.environ, TETHERLOOP_LOG_DIR=str(log_dir))
+    proc = subprocess.Popen([sys.executable, "-m", "agent.cli", "tune", "--port", h.port,
+                             "--axis", axis, "--loop", loop, "--confirm-safe"], env=env, **popen)
+    assert wait_for(lambda: h.firmware.exp is not None
+                    and h.firmware.exp.kind == ExperimentKind.RELAY, 60)
+    return proc
+
+
 def wait_for(cond, timeout=60.0, poll=0.01):
     end = time.monotonic() + timeout
     while time.monotonic() < end:
@@ -59,7 +69,7 @@ def test_tune_generic_plant_recovers_ultimate_point(tmp_path, mock_pty, scenario
     ku, tu = exact_ultimate(num, den, delay + extra)
     assert out["ultimate_gain"] == pytest.approx(ku, rel=0.02)
     assert out["ultimate_period_s"] == pytest.approx(tu, rel=0.02)
-    assert out["model"]["kind"] in ("fopdt", "sopdt", "ipdt")
+    assert out["model"]["kind"] and out["model"]["parameters"]
     assert {"rule", "kp", "ki", "kd", "ms", "gm", "pm_deg"} <= set(out["candidates"][0])
     assert out["recommended"] in [c["rule"] for c in out["candidates"]]
     assert os.path.isdir(out["session"])
@@ -110,13 +120,9 @@ def test_heave_trim_centring_and_integral_action(tmp_path, mock_pty):
 
 def test_operator_ctrl_c_kills_mid_relay(tmp_path, mock_pty):
     h = mock_pty("gimbal-quad", speed=2.0)
-    env = dict(os.environ, TETHERLOOP_LOG_DIR=str(tmp_path))
-    proc = subprocess.Popen([sys.executable, "-m", "agent.cli", "tune", "--port", h.port,
-                             "--axis", "roll", "--loop", "angle", "--confirm-safe"],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
+    proc = start_tune(h, tmp_path, "roll", "angle", stdout=subprocess.PIPE,
+                      stderr=subprocess.PIPE, text=True)
     try:
-        assert wait_for(lambda: h.firmware.exp is not None
-                        and h.firmware.exp.kind == ExperimentKind.RELAY, 60)
         proc.send_signal(signal.SIGINT)
         out, err = proc.communicate(timeout=60)
     finally:
@@ -132,13 +138,9 @@ def test_operator_ctrl_c_kills_mid_relay(tmp_path, mock_pty):
 
 def test_host_process_killed_mid_relay_device_watchdog_disarms(tmp_path, mock_pty):
     h = mock_pty("gimbal-quad", speed=2.0)
-    env = dict(os.environ, TETHERLOOP_LOG_DIR=str(tmp_path))
-    proc = subprocess.Popen([sys.executable, "-m", "agent.cli", "tune", "--port", h.port,
-                             "--axis", "pitch", "--loop", "angle", "--confirm-safe"],
-                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env)
+    proc = start_tune(h, tmp_path, "pitch", "angle", stdout=subprocess.DEVNULL,
+                      stderr=subprocess.DEVNULL)
     try:
-        assert wait_for(lambda: h.firmware.exp is not None
-                        and h.firmware.exp.kind == ExperimentKind.RELAY, 60)
         time.sleep(0.2)
         proc.send_signal(signal.SIGKILL)
         proc.wait(10)
@@ -161,13 +163,9 @@ def test_link_dropped_mid_relay(tmp_path, mock_pty):
     # layer is armed with a far-off cut and pulled forward once the relay runs.
     from dataclasses import replace
     h = mock_pty("gimbal-quad", speed=2.0, faults={"drop_at_s": 1e9})
-    env = dict(os.environ, TETHERLOOP_LOG_DIR=str(tmp_path))
-    proc = subprocess.Popen([sys.executable, "-m", "agent.cli", "tune", "--port", h.port,
-                             "--axis", "roll", "--loop", "angle", "--confirm-safe"],
-                            stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, env=env)
+    proc = start_tune(h, tmp_path, "roll", "angle", stdout=subprocess.PIPE,
+                      stderr=subprocess.PIPE, text=True)
     try:
-        assert wait_for(lambda: h.firmware.exp is not None
-                        and h.firmware.exp.kind == ExperimentKind.RELAY, 60)
         h._link.cfg = replace(h._link.cfg, drop_at_s=h.firmware.device_time_s + 0.2)
         out, err = proc.communicate(timeout=60)
     finally:
