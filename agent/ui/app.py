@@ -10,11 +10,9 @@ writes the kill frame directly (``Stand.kill`` does not wait for an answer).
 
 from __future__ import annotations
 
-import math
 import threading
 import time
 from dataclasses import dataclass
-from pathlib import Path
 
 from textual import work
 from textual.app import App, ComposeResult
@@ -72,6 +70,7 @@ class ProgressNotice(Message):
 
 class StandConsole(App):
     CSS_PATH = "console.tcss"
+    ENABLE_COMMAND_PALETTE = False
     TITLE = "tetherloop stand console"
 
     BINDINGS = [
@@ -159,15 +158,17 @@ class StandConsole(App):
     def action_kill(self) -> None:
         """Kill now. Works without a plan, without a run, in any state, on any screen."""
         stand = self.stand
-        if self.stop_event is not None:
-            self.stop_event.set()
         if stand is None:
+            if self.stop_event is not None:
+                self.stop_event.set()
             self.notify("No board connected: there is nothing to kill from here. Use the "
                         "hardware kill if something is moving.", severity="warning")
             return
         try:
-            stand.kill(KillReason.HOST_OPERATOR)
+            stand.kill(KillReason.HOST_OPERATOR)  # first: a running workflow ends as killed
         except Exception as exc:  # link gone: the device watchdog kills; say what to do
+            if self.stop_event is not None:
+                self.stop_event.set()
             self.notify(f"KILL could not be sent ({exc}). Use the hardware kill now!",
                         severity="error", timeout=30)
             return
@@ -238,11 +239,11 @@ class StandConsole(App):
             if stand.killed:
                 state = "killed"
             info = stand.info
-            board = info.device_id + (" (SIMULATED)" if stand.mock is not None else "")
+            board = info.device_id + (" (SIM)" if stand.mock is not None else "")
             lost = stand.link.lost_reason
             link = ("LINK LOST" if lost else
-                    f"{fmt(self._link_rate(), 3)} tel/s, {fmt(stand.link.latency_ms_median(), 2)}"
-                    f" ms, bad {stand.link.stats.bad_frames}")
+                    f"{fmt(self._link_rate(), 3)} tel/s {fmt(stand.link.latency_ms_median(), 2)}"
+                    f" ms bad {stand.link.stats.bad_frames}")
             alert = ""
             if self.last_kill and stand.killed:
                 k = self.last_kill
@@ -388,8 +389,10 @@ class StandConsole(App):
     def cycle_scope_level(self) -> None:
         if self.stand is None or not self._claim("switching the scope level"):
             return
-        i = SCOPE_LEVELS.index(self.scope_level)
-        self.scope_level = SCOPE_LEVELS[(i + 1) % len(SCOPE_LEVELS)]
+        offered = [lv for lv in SCOPE_LEVELS
+                   if any(lv in levels for levels in self.stand.info.axes.values())]
+        i = offered.index(self.scope_level) if self.scope_level in offered else -1
+        self.scope_level = offered[(i + 1) % len(offered)]
         self._simple_worker(self._scope_telemetry, "scope level", self.stand)
 
     @work(thread=True, exclusive=False, group="stand")
@@ -665,7 +668,7 @@ class StandConsole(App):
             if setpoint is None:
                 setpoint = 0.0
                 if lp.loop == "heave":  # hold the height the frame is at
-                    setpoint = workflows._latest(stand, int(Axis.HEAVE), int(Loop.HEAVE)) or 0.0
+                    setpoint = workflows.current_measurement(stand, int(Axis.HEAVE), int(Loop.HEAVE)) or 0.0
             stand.confirmed = True
             if stand.monitor is not None:
                 stand.monitor.limits = plan.limits

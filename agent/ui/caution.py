@@ -22,6 +22,7 @@ class CautionScreen(ModalScreen[bool]):
     """Dismisses with True only after the operator typed the confirmation word."""
 
     BINDINGS = [Binding("escape", "cancel", "Cancel (nothing is armed)")]
+    AUTO_FOCUS = "#caution-input"
 
     def __init__(self, what: str):
         super().__init__()

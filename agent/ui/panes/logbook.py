@@ -5,7 +5,6 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from rich.text import Text
 from textual import work
 from textual.app import ComposeResult
 from textual.binding import Binding
@@ -17,8 +16,8 @@ class LogbookPane(Vertical):
     BINDINGS = [
         Binding("u", "refresh", "Rescan"),
         Binding("r", "reanalyse", "Re-analyse"),
-        Binding("e", "export", "Export CSV"),
-        Binding("h", "report", "HTML report"),
+        Binding("e", "export", "Export"),
+        Binding("h", "report", "Report"),
     ]
 
     def compose(self) -> ComposeResult:

@@ -5,12 +5,14 @@ before anything can be armed."""
 
 from __future__ import annotations
 
+import math
+
 from textual.app import ComposeResult
-from textual.containers import Horizontal, Vertical, VerticalScroll
+from textual.containers import Horizontal, VerticalScroll
 from textual.widgets import Checkbox, Input, Label, Select, SelectionList, Static
 
 from agent.plan import (CONTROLLERS, LoopPlan, Plan, PlanError, check_against_device,
-                        in_cascade_order, plan_from_dict)
+                        default_plan, in_cascade_order, plan_from_dict)
 
 # (key, label, default text) — operator units, the same keys as a plan file
 STAND_FIELDS = (("ms_target", "Ms target (robustness, 1.1-2.5)", "1.4"),
@@ -20,7 +22,7 @@ LIMIT_FIELDS = (("angle_deg", "kill: angle [deg]", "30"),
                 ("heave_m", "kill: heave excursion [m]", "0.25"),
                 ("climb_rate_m_s", "kill: climb rate [m/s]", "1.0"),
                 ("saturation_s", "kill: output saturated [s]", "1.5"),
-                ("max_experiment_s", "longest experiment [s]", "60"))
+                ("max_experiment_s", "longest experiment [s]", "120"))
 
 
 def _rules() -> list[str]:
@@ -76,7 +78,20 @@ class PlanPane(VerticalScroll):
             for lp in loops:
                 sl.add_option((lp.key, lp.key, True))  # every loop, as the CLI's default plan
             sl.highlighted = 0
+            self._defaults_from(stand)
         self.validate_plan()
+
+    def _defaults_from(self, stand) -> None:
+        """The same defaults the CLI uses without a plan file: the board's own kill settings
+        where it has them (shown in operator units)."""
+        dp = default_plan(stand.info.axes, dict(stand.session.values))
+        lim = dp.limits
+        shown = {"angle_deg": math.degrees(lim.angle_rad),
+                 "rate_deg_s": math.degrees(lim.rate_rad_s), "heave_m": lim.heave_m,
+                 "climb_rate_m_s": lim.climb_rate_m_s, "saturation_s": lim.saturation_s,
+                 "max_experiment_s": dp.max_experiment_s, "relay_target": dp.relay_target}
+        for key, value in shown.items():
+            self.query_one(f"#plan-{key}", Input).value = f"{value:.6g}"
 
     def select_loops(self, keys) -> None:
         sl = self.query_one("#plan-loops", SelectionList)

@@ -35,6 +35,7 @@ class ResultsPane(Vertical):
         self.loops: dict = {}  # key -> LoopResult
         table = self.query_one("#candidates", DataTable)
         table.add_columns("rule", "kp", "ki", "kd", "Ms", "GM", "PM deg", "os %", "rise s")
+        self.show(None)
 
     # ------------------------------------------------------------------ data
     def set_results(self, loops) -> None:
@@ -88,7 +89,6 @@ class ResultsPane(Vertical):
         if lr.message:
             s.append(f" {lr.message}")
         status.update(s)
-        d = lr.to_dict()
         rows = [("loop", f"{lr.key} ({lr.controller.upper()})"), ("status", lr.status)]
         if lr.message:
             rows.append(("why", lr.message))

@@ -1,0 +1,381 @@
+"""The stand console driven from the keyboard with textual's headless pilot, against the built-in
+simulated stand (an invented gimbal rig, accelerated clock).
+
+Waits below poll the app until a condition holds and fail with a message if it never does; no
+assertion is about how long anything took.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import re
+import time
+
+import numpy as np
+import pytest
+
+from agent.ui.app import ConsoleOptions, StandConsole
+from agent.ui.caution import CautionScreen
+from protocol.messages import DeviceState
+
+SPEED = "5"
+
+
+@pytest.fixture(autouse=True)
+def _pilot_idle_with_a_busy_simulator(monkeypatch):
+    """The pilot waits after each key until the process's CPU time stops growing (at most 1 s,
+    twice per key). The simulated board runs in this process and never idles, so every key
+    would cost 2 s. Waiting a few milliseconds instead is enough: the pilot still waits for
+    every widget to process its pending messages after each key (``_wait_for_screen``)."""
+    import textual.app
+    import textual.pilot
+
+    async def short_idle(min_sleep: float = 0.0, max_sleep: float = 0.0) -> None:
+        await asyncio.sleep(0.01)
+
+    monkeypatch.setattr(textual.app, "wait_for_idle", short_idle)
+    monkeypatch.setattr(textual.pilot, "wait_for_idle", short_idle)
+WAIT_LIMIT_S = 60.0  # a guard against a hung test, not a speed requirement
+
+
+def _text(widget) -> str:
+    """The plain text a Static-like widget shows."""
+    r = widget.render()
+    return getattr(r, "plain", None) or str(r)
+
+
+def screen_lines(app) -> list[str]:
+    """The screen as plain text lines (what a person sees, colours dropped)."""
+    return [strip.text for strip in app.screen._compositor.render_strips()]
+
+
+async def wait_for(pilot, cond, what: str, limit_s: float = WAIT_LIMIT_S) -> None:
+    end = time.monotonic() + limit_s
+    while not cond():
+        if time.monotonic() > end:
+            lines = "\n".join(screen_lines(pilot.app))
+            pytest.fail(f"gave up waiting for: {what}\nscreen:\n{lines}")
+        await pilot.pause(0.1)
+
+
+def demo_app(tmp_path, speed=SPEED) -> StandConsole:
+    return StandConsole(ConsoleOptions(demo=True, log_dir=str(tmp_path / "logs"), speed=speed,
+                                       seed=1))
+
+
+async def connected(pilot) -> None:
+    app = pilot.app
+    await wait_for(pilot, lambda: app.stand is not None and app.busy is None,
+                   "the simulated stand to connect")
+    await pilot.pause(0.2)
+
+
+async def plan_one_loop(pilot, verify: bool) -> None:
+    """On the Plan tab, keep only the first loop (roll.rate) and set verification, by keys."""
+    app = pilot.app
+    await pilot.press("f4")
+    await pilot.pause(0.1)
+    sl = app.query_one("#plan-loops")
+    assert app.focused is sl, "F4 should put the focus on the loop list"
+    n = len(sl.options)
+    assert n == 6, "the gimbal stand offers rate and angle loops on three axes"
+    for _ in range(n - 1):
+        await pilot.press("down", "space")
+    assert list(sl.selected) == ["roll.rate"]
+    if not verify:
+        for _ in range(30):
+            if app.focused is not None and app.focused.id == "plan-verify":
+                break
+            await pilot.press("tab")
+        assert app.focused.id == "plan-verify", "the verify box is reachable with Tab"
+        await pilot.press("space")
+    await pilot.pause(0.1)
+    plan = app.query_one("#plan").plan
+    assert plan is not None, _text(app.query_one("#plan-status"))
+    assert [lp.key for lp in plan.loops] == ["roll.rate"]
+    assert plan.verify is verify
+
+
+async def start_and_confirm(pilot) -> None:
+    app = pilot.app
+    await pilot.press("f5")
+    await pilot.press("g")
+    await wait_for(pilot, lambda: isinstance(app.screen, CautionScreen)
+                   and getattr(app.focused, "id", None) == "caution-input", "the safety check")
+    assert app.stand.state == DeviceState.DISARMED, "nothing is armed before the confirmation"
+    await pilot.press("y", "e", "s", "enter")
+
+
+def plant_ultimate_point(num, den, delay_s) -> tuple[float, float]:
+    """Ultimate gain and period of num/den·e^(-s·delay): the phase crossover of the frequency
+    response, Ku = 1/|G(jωu)|, Tu = 2π/ωu (Ziegler & Nichols 1942 define the ultimate point;
+    Åström & Hägglund 1984 relate it to the relay oscillation)."""
+    def G(w):
+        s = 1j * w
+        return np.polyval(num, s) / np.polyval(den, s) * np.exp(-s * delay_s)
+
+    ws = np.logspace(-1, 5, 200_000)
+    phase = np.unwrap(np.angle(G(ws)))
+    i = int(np.argmax(phase < -np.pi))
+    assert i > 0, "no phase crossover on the grid"
+    wu = float(np.interp(-np.pi, [phase[i], phase[i - 1]], [ws[i], ws[i - 1]]))
+    return 1.0 / abs(G(wu)), 2 * np.pi / wu
+
+
+def kv_value(text: str, label: str) -> float:
+    m = re.search(rf"^{re.escape(label)}\s+(-?[0-9.eE+-]+)", text, re.M)
+    assert m, f"{label!r} not shown in:\n{text}"
+    return float(m.group(1))
+
+
+# ------------------------------------------------------------------------------ tests
+
+
+def test_autotune_from_the_keyboard(tmp_path):
+    async def run():
+        app = demo_app(tmp_path)
+        async with app.run_test(size=(80, 24)) as pilot:
+            await connected(pilot)
+            ident = _text(app.query_one("#identity"))
+            assert "mock-gimbal-quad" in ident and "1000 Hz" in ident
+            assert "protocol" in ident and "firmware" in ident
+            await plan_one_loop(pilot, verify=False)
+            await start_and_confirm(pilot)
+            states = set()
+
+            def finished():
+                if app.stand is not None:
+                    states.add(app.stand.state)
+                return app.busy is None and app.result is not None
+
+            await wait_for(pilot, finished, "the run to finish")
+            assert app.stand.confirmed
+            assert DeviceState.RUNNING in states, "the strip polled a running board"
+            result = app.result
+            assert result.outcome == "ok", result.message
+            assert [lr.status for lr in result.loops] == ["applied"]
+            checklist = _text(app.query_one("#checklist"))
+            assert "[+] 1. roll.rate" in checklist and "applied" in checklist
+            runlog = "\n".join(s.text for s in app.query_one("#run-log").lines)
+            assert "outcome: ok" in runlog and "Ku" in runlog
+            assert app.stand.state == DeviceState.DISARMED
+            await wait_for(pilot, lambda: screen_lines(app)[0].startswith(" DISARMED"),
+                           "the state strip to show DISARMED")
+            assert "running the plan" not in screen_lines(app)[0]
+
+            await pilot.press("f6")
+            await pilot.pause(0.3)
+            text = _text(app.query_one("#results-ident"))
+            # what is shown is what the workflow computed (the console computes nothing)
+            lr = app.result.loops[0]
+            best, plant = lr.identification.best, lr.identification.best_plant
+            assert kv_value(text, "Ku") == pytest.approx(best.ku, rel=1e-3)
+            assert kv_value(text, "Tu") == pytest.approx(best.tu_s, rel=1e-3)
+            assert kv_value(text, "plant Ku") == pytest.approx(plant.ku, rel=1e-3)
+            # plausible: the same order as the true ultimate point of the simulated plant (its
+            # transfer function from the scenario, sampling delay excluded); the accuracy of
+            # the identification itself is the end-to-end tests' business
+            num, den, delay = _ground_truth()
+            ku_true, tu_true = plant_ultimate_point(num, den, delay)
+            ku, tu = kv_value(text, "plant Ku"), kv_value(text, "plant Tu")
+            assert ku_true / 2.5 < ku < ku_true * 2.5, (ku, ku_true, text)
+            assert tu_true / 2.5 < tu < tu_true * 2.5, (tu, tu_true, text)
+            assert "model" in text
+            table = app.query_one("#candidates")
+            assert table.row_count >= 2, "several candidates with margins"
+            rows = [table.get_row_at(i) for i in range(table.row_count)]
+            assert any(str(r[0]).startswith("*") for r in rows), "the chosen one is marked"
+            for r in rows:
+                ms = float(r[4])
+                assert 1.0 <= ms < 5.0, f"Ms is at least 1 by definition: {r}"
+            # choose another candidate and apply it, then roll back, all from the keyboard
+            app.query_one("#candidates").focus()
+            before = dict(lr.applied_gains)
+            chosen_row = next(i for i, r in enumerate(rows) if str(r[0]).startswith("*"))
+            other = 0 if chosen_row != 0 else 1
+            table.move_cursor(row=other)
+            await pilot.pause(0.1)
+            await pilot.press("a")
+            await wait_for(pilot, lambda: app.busy is None and lr.applied_gains != before,
+                           "the other candidate to be applied")
+            kp_name = "roll.rate.kp"
+            assert app.stand.session.values[kp_name] == pytest.approx(
+                lr.tuning.candidates[other].kp, rel=1e-5)
+            await pilot.press("b")
+            await wait_for(pilot, lambda: app.busy is None and lr.status == "rolled_back",
+                           "the roll back")
+            assert app.stand.session.values[kp_name] == pytest.approx(before[kp_name], rel=1e-5)
+            await pilot.press("ctrl+q")
+
+    asyncio.run(run())
+
+
+def _ground_truth():
+    from mock_device.scenarios import load_scenario
+    return load_scenario("gimbal-quad").ground_truth("roll", "rate")
+
+
+def test_kill_key_during_the_relay(tmp_path):
+    async def run():
+        app = demo_app(tmp_path, speed="5")
+        async with app.run_test(size=(80, 24)) as pilot:
+            await connected(pilot)
+            await plan_one_loop(pilot, verify=False)
+            await start_and_confirm(pilot)
+            run_pane = app.query_one("#run")
+            await wait_for(pilot, lambda: run_pane.stage in ("ramp", "relay"),
+                           "the relay experiment")
+            assert app.stand.state == DeviceState.RUNNING
+            await pilot.press("ctrl+k")
+            await wait_for(pilot, lambda: app.stand.mock.firmware.state == DeviceState.KILLED,
+                           "the simulated board to report KILLED")
+            await wait_for(pilot, lambda: app.busy is None, "the workflow to end")
+            assert app.result is None or app.result.outcome in ("killed", "failed")
+            await pilot.pause(0.4)
+            assert app.stand.state == DeviceState.KILLED
+            top = screen_lines(app)[0]
+            assert "KILLED" in top and "host_operator" in top, top
+            box = _text(app.query_one("#kill-box"))
+            assert "host_operator" in box and "host" in box
+            # nothing can be armed while killed
+            await pilot.press("g")
+            await pilot.pause(0.2)
+            assert not isinstance(app.screen, CautionScreen)
+            # clear the kill, by key, and the board is usable again
+            await pilot.press("x")
+            await wait_for(pilot, lambda: app.busy is None and not app.stand.killed,
+                           "the kill to clear")
+            assert app.stand.mock.firmware.state == DeviceState.DISARMED
+            assert not app.query_one("#kill-box").display
+            await pilot.press("ctrl+q")
+
+    asyncio.run(run())
+
+
+def test_kill_key_on_the_safety_check_and_without_a_board(tmp_path):
+    async def run():
+        app = StandConsole(ConsoleOptions(log_dir=str(tmp_path / "logs")))
+        async with app.run_test(size=(80, 24)) as pilot:
+            await pilot.press("ctrl+k")  # no board: says so, does not crash
+            await pilot.pause(0.1)
+            assert app.stand is None
+            assert any("nothing to kill" in n.message for n in app._notifications)
+        app = demo_app(tmp_path)
+        async with app.run_test(size=(80, 24)) as pilot:
+            await connected(pilot)
+            await plan_one_loop(pilot, verify=True)
+            await start_and_confirm_only_show(pilot)
+            await pilot.press("ctrl+k")  # the modal is on top: the kill still goes out
+            await wait_for(pilot, lambda: app.stand.mock.firmware.state == DeviceState.KILLED,
+                           "the board to be killed from the safety check")
+            await pilot.press("escape")
+            await pilot.pause(0.1)
+            assert not isinstance(app.screen, CautionScreen)
+            assert not app.stand.confirmed, "cancelled: nothing confirmed, nothing armed"
+            await pilot.press("ctrl+q")
+
+    asyncio.run(run())
+
+
+async def start_and_confirm_only_show(pilot) -> None:
+    app = pilot.app
+    await pilot.press("f5", "g")
+    await wait_for(pilot, lambda: isinstance(app.screen, CautionScreen)
+                   and getattr(app.focused, "id", None) == "caution-input", "the safety check")
+    await wait_for(pilot, lambda: "Propellers OFF" in "\n".join(screen_lines(app)),
+                   "the cautions on screen")
+    assert "Type 'yes'" in "\n".join(screen_lines(app))
+
+
+def test_plan_errors_are_shown_before_anything_is_armed(tmp_path):
+    async def run():
+        app = demo_app(tmp_path)
+        async with app.run_test(size=(80, 24)) as pilot:
+            await connected(pilot)
+            plan = app.query_one("#plan")
+            await pilot.press("f4")
+            plan.set_field("ms_target", "9")
+            await pilot.pause(0.1)
+            status = _text(app.query_one("#plan-status"))
+            assert "NOT valid" in status and "ms_target" in status and "1.1" in status
+            plan.set_field("ms_target", "1.4")
+            plan.set_field("angle_deg", "lots")
+            await pilot.pause(0.1)
+            status = _text(app.query_one("#plan-status"))
+            assert "angle_deg" in status and "not a number" in status
+            await pilot.press("f5", "g")
+            await pilot.pause(0.2)
+            assert not isinstance(app.screen, CautionScreen), "an invalid plan never asks to arm"
+            assert app.query_one("#tabs").active == "tab-plan", "sent back to the plan"
+            assert app.stand.state == DeviceState.DISARMED
+            plan.set_field("angle_deg", "30")
+            plan.select_loops([])
+            await pilot.pause(0.1)
+            assert "no [[loop]]" in _text(app.query_one("#plan-status"))
+            await pilot.press("ctrl+q")
+
+    asyncio.run(run())
+
+
+def test_wrong_confirmation_word_does_not_arm(tmp_path):
+    async def run():
+        app = demo_app(tmp_path)
+        async with app.run_test(size=(80, 24)) as pilot:
+            await connected(pilot)
+            await plan_one_loop(pilot, verify=False)
+            await start_and_confirm_only_show(pilot)
+            await pilot.press("o", "k", "enter")
+            await pilot.pause(0.1)
+            assert isinstance(app.screen, CautionScreen), "'ok' is not the confirmation word"
+            assert "is not 'yes'" in _text(app.screen.query_one("#caution-hint"))
+            await pilot.press("escape")
+            await pilot.pause(0.2)
+            assert app.stand.state == DeviceState.DISARMED and not app.stand.confirmed
+            assert app.busy is None
+            await pilot.press("ctrl+q")
+
+    asyncio.run(run())
+
+
+@pytest.mark.parametrize("argv, words", [
+    (["ui", "--demo", "--speed", "fast-ish"], ["--speed", "max"]),
+    (["ui", "--demo", "--speed", "0"], ["--speed", "above 0"]),
+    (["ui", "--scenario", "heave-rail"], ["--scenario", "--demo"]),
+    (["ui", "--demo", "--scenario", "no-such-stand"], ["no-such-stand", "gimbal-quad"]),
+])
+def test_ui_command_rejects_bad_options_with_a_message(argv, words, capsys):
+    from agent.cli import main
+    code = main(argv)
+    err = capsys.readouterr().err
+    assert code == 2
+    assert "Traceback" not in err
+    for w in words:
+        assert w in err, err
+
+
+def test_a_kill_on_the_board_is_shown_with_its_reason(tmp_path):
+    async def run():
+        app = demo_app(tmp_path)
+        async with app.run_test(size=(80, 24)) as pilot:
+            await connected(pilot)
+            await pilot.press("f3")  # any tab: the strip and the Run tab's box both show it
+            app.stand.mock.firmware.press_kill_button()  # the board's own kill input
+            await wait_for(pilot, lambda: app.last_kill is not None, "the board's kill event")
+            await wait_for(pilot, lambda: screen_lines(app)[0].startswith(" KILLED"),
+                           "the strip to turn KILLED")
+            assert app.last_kill["origin"] == "device"
+            top = screen_lines(app)[0]
+            assert f"device: {app.last_kill['reason']}" in top, top
+            box = _text(app.query_one("#kill-box"))
+            assert "by device" in box and app.last_kill["reason"] in box
+            await pilot.press("ctrl+q")
+
+    asyncio.run(run())
+
+
+def test_the_ultimate_point_helper_on_a_textbook_plant():
+    # 1/(s+1)^3: Ku = 8, ωu = √3 rad/s (textbook result; e.g. Åström & Hägglund 1995, PID
+    # Controllers: Theory, Design and Tuning, ISA)
+    ku, tu = plant_ultimate_point([1.0], [1.0, 3.0, 3.0, 1.0], 0.0)
+    assert ku == pytest.approx(8.0, rel=1e-3)
+    assert tu == pytest.approx(2 * np.pi / np.sqrt(3.0), rel=1e-3)
