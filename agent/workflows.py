@@ -11,9 +11,12 @@ the same workflow runs against hardware, a real-time mock or an accelerated one.
 
 from __future__ import annotations
 
+import atexit
 import math
+import multiprocessing
 import threading
 import time
+from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
 from typing import Any, Callable
 
@@ -209,7 +212,8 @@ def _meta(stand: Stand, lp: LoopPlan, kind: str, **extra) -> dict:
             "sampling_delay_s": SAMPLING_DELAY_TICKS / rate, **extra}
 
 
-def _latest(stand: Stand, axis_i: int, loop_i: int) -> float | None:
+def current_measurement(stand: Stand, axis_i: int, loop_i: int) -> float | None:
+    """The latest measurement the board reported for an axis and loop level, or None."""
     for _, tel in reversed(stand.buffer.live):
         for s in tel.axes:
             if s.axis == axis_i and s.loop == loop_i:
@@ -269,7 +273,7 @@ def noise_check(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = _
     setpoint = 0.0
     if lp.loop == "heave":
         _wait(stand, stop, 0.1)
-        setpoint = _latest(stand, axis_i, loop_i) or 0.0
+        setpoint = current_measurement(stand, axis_i, loop_i) or 0.0
     hold_s = HOLD_S["heave"] if lp.axis == "heave" else HOLD_S[lp.loop]
     exp_id = exp_id or f"{lp.axis}-{lp.loop}-hold"
     exp = _start_experiment_log(stand, exp_id, _meta(stand, lp, "hold", setpoint=setpoint,
@@ -431,6 +435,38 @@ def _cross_coupling(cols: dict, axis_i: int, loop_i: int, window: dict) -> dict:
     return out
 
 
+# ---------------------------------------------------------------------------- analysis worker
+
+_POOL: ProcessPoolExecutor | None = None
+_POOL_LOCK = threading.Lock()
+
+
+def _analysis_pool() -> ProcessPoolExecutor:
+    """One worker process for the numerics: a fit can keep a CPU busy for seconds, and in this
+    process it would compete for the interpreter with the link's reader and keepalive threads
+    (a starved keepalive lets the board's watchdog kill an idle, armed stand)."""
+    global _POOL
+    with _POOL_LOCK:
+        if _POOL is None:
+            _POOL = ProcessPoolExecutor(max_workers=1,
+                                        mp_context=multiprocessing.get_context("spawn"))
+            atexit.register(_POOL.shutdown, wait=False, cancel_futures=True)
+        return _POOL
+
+
+def identify_and_tune(record, kwargs: dict):
+    """analysis.identify then analysis.tune (top level so the worker process can run it)."""
+    ident = analysis.identify(record)
+    return ident, analysis.tune(ident, **kwargs)
+
+
+def _analyse(stand: Stand, record, kwargs: dict, stop) -> tuple:
+    fut = _analysis_pool().submit(identify_and_tune, record, kwargs)
+    while not fut.done():
+        _wait(stand, stop, 0.05)  # kills and stop requests stay live while the worker runs
+    return fut.result()
+
+
 # ---------------------------------------------------------------------------- apply / verify
 
 
@@ -563,8 +599,8 @@ def tune_loop(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = _qu
                                   "cross_coupling": res.cross_coupling,
                                   "noise": noise}
     try:
-        res.identification = analysis.identify(record)
-        res.tuning = analysis.tune(res.identification, **tune_kwargs(run["analysis_input"]))
+        res.identification, res.tuning = _analyse(stand, record,
+                                                  tune_kwargs(run["analysis_input"]), stop)
     except analysis.RecordError as exc:
         result_doc["error"] = str(exc)
         _end_experiment_log(stand, run["exp"], result_doc)
@@ -671,8 +707,13 @@ def autotune(stand: Stand, plan: Plan, progress: ProgressFn = _quiet,
         result.outcome, result.message = "cancelled", str(exc)
         _safe_disarm(stand)
     except (SessionError, LinkError) as exc:
-        stand.kill(KillReason.HOST_LINK if isinstance(exc, LinkError) else KillReason.HOST_ERROR)
-        result.outcome, result.message = "failed", str(exc)
+        if stand.killed:  # e.g. a request refused because a kill had just latched
+            info = stand.kills[-1] if stand.kills else {"reason": "device reports KILLED"}
+            result.outcome, result.message = "killed", str(KillTripped(info))
+        else:
+            stand.kill(KillReason.HOST_LINK if isinstance(exc, LinkError)
+                       else KillReason.HOST_ERROR)
+            result.outcome, result.message = "failed", str(exc)
     except BaseException:
         stand.kill(KillReason.HOST_ERROR)
         raise

@@ -2,4 +2,5 @@ import sys
 
 from . import main
 
-sys.exit(main())
+if __name__ == "__main__":  # guarded: the analysis worker process imports this module too
+    sys.exit(main())
