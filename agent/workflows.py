@@ -12,8 +12,10 @@ the same workflow runs against hardware, a real-time mock or an accelerated one.
 from __future__ import annotations
 
 import atexit
+import contextlib
 import math
 import multiprocessing
+import sys
 import threading
 import time
 from concurrent.futures import ProcessPoolExecutor
@@ -441,6 +443,19 @@ _POOL: ProcessPoolExecutor | None = None
 _POOL_LOCK = threading.Lock()
 
 
+@contextlib.contextmanager
+def _real_std_streams():
+    """Starting a worker passes stderr's file descriptor to the child; a terminal UI replaces
+    sys.stdout/sys.stderr with objects that have none, so use the real ones meanwhile."""
+    saved = sys.stdout, sys.stderr
+    sys.stdout = sys.__stdout__ or saved[0]
+    sys.stderr = sys.__stderr__ or saved[1]
+    try:
+        yield
+    finally:
+        sys.stdout, sys.stderr = saved
+
+
 def _analysis_pool() -> ProcessPoolExecutor:
     """One worker process for the numerics: a fit can keep a CPU busy for seconds, and in this
     process it would compete for the interpreter with the link's reader and keepalive threads
@@ -448,8 +463,11 @@ def _analysis_pool() -> ProcessPoolExecutor:
     global _POOL
     with _POOL_LOCK:
         if _POOL is None:
-            _POOL = ProcessPoolExecutor(max_workers=1,
-                                        mp_context=multiprocessing.get_context("spawn"))
+            with _real_std_streams():
+                pool = ProcessPoolExecutor(max_workers=1,
+                                           mp_context=multiprocessing.get_context("spawn"))
+                pool.submit(int).result()  # start the worker now, with the real streams
+            _POOL = pool
             atexit.register(_POOL.shutdown, wait=False, cancel_futures=True)
         return _POOL
 
