@@ -518,12 +518,14 @@ def apply_gains(stand: Stand, gains: dict[str, float], progress: ProgressFn = _q
 
 
 def verify_step(stand: Stand, lp: LoopPlan, plan: Plan, cand, *, setpoint: float,
-                step: float | None = None, progress: ProgressFn = _quiet,
+                step: float | None = None, noise_std: float | None = None,
+                progress: ProgressFn = _quiet,
                 stop: threading.Event | None = None, exp_id: str | None = None) -> dict:
     """Step test with the applied gains; measured metrics beside the prediction.
 
-    The step size defaults to the oscillation amplitude the relay reached (a size the loop has
-    just shown it handles within the limits), capped at the relay target; a rate step also
+    tune_loop asks for 1.5 times the oscillation amplitude the relay reached (a size the loop
+    has just shown it handles within the limits, large enough to stand out of the noise), capped
+    at the relay target; a rate step also
     integrates into an angle, so it is kept small enough for that angle to stay within half the
     angle limit over the test."""
     axis_i, loop_i = _ids(lp)
@@ -563,7 +565,10 @@ def verify_step(stand: Stand, lp: LoopPlan, plan: Plan, cand, *, setpoint: float
     y = cols["measurement"][sel]
     after = t >= step_at
     y0 = float(np.mean(y[~after][-max(1, int(0.5 * (~after).sum())):])) if (~after).any() else setpoint
-    met = analysis.step_metrics(t[after] - step_at, y[after], y0, setpoint + step)
+    # with the measurement noise from the hold, the metrics are taken on a zero-phase smoothed
+    # response, so noise peaks do not count as overshoot
+    met = analysis.step_metrics(t[after] - step_at, y[after], y0, setpoint + step,
+                                noise_std=noise_std if noise_std and noise_std > 0 else None)
     measured = {"overshoot": _f(met.overshoot), "rise_s": _f(met.rise_s),
                 "settling_s": _f(met.settling_s), "iae": _f(met.iae)}
     predicted = {"overshoot": _f(pred.overshoot), "rise_s": _f(pred.rise_s),
@@ -653,7 +658,8 @@ def tune_loop(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = _qu
         return res
     try:
         res.verification = verify_step(stand, lp, plan, res.chosen, setpoint=noise["setpoint"],
-                                       step=res.relay.get("amplitude_seen"),
+                                       step=1.5 * res.relay.get("amplitude_seen", 0.0) or None,
+                                       noise_std=res.noise_std,
                                        progress=progress, stop=stop)
         res.experiments.append(res.verification["experiment"])
     except KillTripped as exc:
