@@ -2,6 +2,7 @@
 
 import json
 
+import control
 import numpy as np
 import pytest
 from hypothesis import given, settings
@@ -160,3 +161,72 @@ def test_fopdt_family_recovered(T, L, K):
     p = ident.ultimate_plant["model_fit"]
     assert p.ku == pytest.approx(ku0, rel=0.01)
     assert p.tu_s == pytest.approx(2 * np.pi / wu0, rel=0.01)
+
+
+def _relay(num, den, delay=0.0, periods=10, per_period=200, noise=0.0, seed=0):
+    ku0, wu0 = phase_crossover((num, den, delay))
+    tu0 = 2 * np.pi / wu0
+    dt = tu0 / per_period
+    sd = noise * 4 / (np.pi * ku0)
+    rec = simulate_relay(num, den, delay, 1.0, 3 * sd, 0.0, dt, periods * tu0, noise_std=sd,
+                         seed=seed)
+    return rec, ku0, tu0
+
+
+def test_third_order_lag_is_recovered_by_the_third_order_family():
+    # 1/(s+1)^3 = third-order lag with T = 1, zeta = 1, T3 = 1, no dead time; Ku = 8 and
+    # wu = sqrt(3) (textbook, value from memory)
+    rec, _, _ = _relay([1.0], [1, 3, 3, 1])
+    ident = identify(rec)
+    assert ident.model.kind == "topdt"
+    p = ident.model.params
+    assert p["K"] == pytest.approx(1.0, rel=0.01)
+    assert p["L"] == pytest.approx(0.0, abs=0.02)
+    assert ident.best_plant.ku == pytest.approx(8.0, rel=0.005)
+    assert ident.best_plant.tu_s == pytest.approx(2 * np.pi / np.sqrt(3), rel=0.005)
+
+
+def test_non_minimum_phase_zero_is_recovered():
+    # (1 - 0.5 s)/(s+1)^3: the zero family finds Tz = -0.5; ultimate point against
+    # python-control's gain margin of the same transfer function
+    num, den = [-0.5, 1.0], [1, 3, 3, 1]
+    gm, _, wpc, _ = control.margin(control.tf(num, den))
+    rec, _, _ = _relay(num, den, noise=0.01, seed=2)
+    ident = identify(rec)
+    assert ident.model.kind == "ztopdt"
+    assert ident.model.params["Tz"] == pytest.approx(-0.5, abs=0.05)
+    assert ident.best_plant.ku == pytest.approx(gm, rel=0.01)
+    assert ident.best_plant.tu_s == pytest.approx(2 * np.pi / wpc, rel=0.005)
+
+
+def test_integrator_plus_two_lags_is_recovered():
+    # 1/(s (s+1)^2): integrator plus second order with T = 1, zeta = 1; textbook ultimate
+    # point Ku = 2, wu = 1 rad/s (phase -90 - 2 atan(w) = -180 at w = 1)
+    rec, _, _ = _relay([1.0], np.polymul([1, 0], [1, 2, 1]), noise=0.01, seed=4)
+    ident = identify(rec)
+    assert ident.model.kind == "isopdt" and ident.model.integrating
+    p = ident.model.params
+    assert p["K"] == pytest.approx(1.0, rel=0.02)
+    assert p["T"] == pytest.approx(1.0, rel=0.03)
+    assert p["zeta"] == pytest.approx(1.0, rel=0.03)
+    assert ident.static_gain is None
+    assert ident.best_plant.ku == pytest.approx(2.0, rel=0.01)
+    assert ident.best_plant.tu_s == pytest.approx(2 * np.pi, rel=0.005)
+
+
+def test_richer_family_must_beat_the_noise_to_be_chosen():
+    # common practice, no source: two fits that both reach the measurement noise are equal,
+    # so the simpler family is kept; a clearly smaller misfit selects the richer one
+    from agent.analysis.models import Model, select_model
+
+    def m(kind, rmse, **p):
+        return Model(kind, {"K": 1.0, "T": 1.0, "L": 0.1, **p}, rmse, 0.1)
+
+    amp, noise = 1.0, 0.01
+    same = {"fopdt": m("fopdt", 0.01005), "sopdt": m("sopdt", 0.01000, zeta=1.0)}
+    assert select_model(same, 2000, amp, noise_std=noise).kind == "fopdt"
+    better = {"fopdt": m("fopdt", 0.0150), "sopdt": m("sopdt", 0.0101, zeta=1.0)}
+    assert select_model(better, 2000, amp, noise_std=noise).kind == "sopdt"
+    neg = {"fopdt": m("fopdt", 0.02), "sopdt": Model("sopdt", {"K": -1.0, "T": 1.0, "L": 0.1,
+                                                               "zeta": 1.0}, 0.001, 0.1)}
+    assert select_model(neg, 2000, amp, noise_std=noise).kind == "fopdt"

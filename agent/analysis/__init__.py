@@ -7,7 +7,8 @@ One module per idea:
 ``simulate``   exact sampled relay loop simulation (for tests, benches and demos)
 ``cycles``     switching instants, periods, stationarity, asymmetry
 ``ultimate``   ultimate point by describing function, hysteresis correction, first harmonic
-``models``     FOPDT / SOPDT / IPDT whole-waveform fits and model choice
+``models``     FOPDT / SOPDT / IPDT and third-order, zero and integrating families:
+               whole-waveform fits and model choice
 ``identify``   the identification pipeline
 ``controller`` the board's PID form and its discretisation
 ``robustness`` gain/phase margins and maximum sensitivity

@@ -50,7 +50,8 @@ class Identification:
     model : Model
         Chosen model as fitted (relay output to measurement, basis ``"record"``).
     models : dict[str, Model]
-        Every fitted family.
+        Every fitted family (a richer family is absent when a simpler one it extends already
+        reproduces the record down to the noise; see ``models.fit_models``).
     model_loop, model_plant : Model
         The chosen model on the loop basis (for design and discrete gains) and on the plant basis.
     bias_estimate : float or None
@@ -151,7 +152,8 @@ def identify(record: RelayRecord) -> Identification:
 
     Steps: validate the record; detect cycles and stationarity; estimate the ultimate point by
     the describing function, with hysteresis correction, by first harmonics and from the fitted
-    model; fit FOPDT, SOPDT and IPDT models to the whole waveform and choose one; estimate the
+    model; fit the model families of :mod:`agent.analysis.models` to the whole waveform and
+    choose one; estimate the
     trim/bias and static gain; collect quality warnings.
 
     Raises
@@ -211,8 +213,10 @@ def identify(record: RelayRecord) -> Identification:
     i0, i1 = cyc.window
 
     # --- models
-    models = fit_models(dt, u, y, per, cyc.amplitude, u_ref=float(record.bias))
-    model = select_model(models, len(y), cyc.amplitude)
+    noise_mad = _noise_mad(y)
+    models = fit_models(dt, u, y, per, cyc.amplitude, u_ref=float(record.bias),
+                        noise_std=noise_mad)
+    model = select_model(models, len(y), cyc.amplitude, noise_std=noise_mad)
     ts_half = 0.5 * dt
     extra = max(float(record.sampling_delay_s) - ts_half, 0.0)
     L = model.params["L"]
@@ -255,11 +259,14 @@ def identify(record: RelayRecord) -> Identification:
     elif noise > 1e-3 * a and abs(eps) < 2 * noise:
         warnings.append(f"The hysteresis ({eps:.3g}) is below twice the noise ({noise:.3g}); "
                         "switching can be triggered by noise. Use about three times the noise.")
-    fit_ok = np.isfinite(model.rel_rmse) and model.rel_rmse <= 0.05
+    # the residual beyond the measurement noise (white noise adds in quadrature) judges the fit
+    misfit = float(np.sqrt(max(model.rmse ** 2 - noise_mad ** 2, 0.0))) / a \
+        if np.isfinite(model.rmse) else float("inf")
+    fit_ok = np.isfinite(model.rel_rmse) and misfit <= 0.05
     if not fit_ok:
         warnings.append(f"The best model ({model.kind}) reproduces the waveform only within "
-                        f"{model.rel_rmse:.0%} of the amplitude; the first-harmonic estimate is "
-                        "used instead of the model.")
+                        f"{model.rel_rmse:.0%} of the amplitude ({misfit:.0%} beyond the noise); "
+                        "the first-harmonic estimate is used instead of the model.")
     key = "model_fit" if fit_ok and np.isfinite(loop["model_fit"].ku) else "first_harmonic"
     best, best_plant = loop[key], plant[key]
 
@@ -275,11 +282,11 @@ def identify(record: RelayRecord) -> Identification:
     # --- bias / trim and static gain
     u_mean = float(np.mean(u[i0:i1])) if i1 > i0 else float(np.mean(u))
     bias_est = u_mean
-    static_gain = float(model.params["K"]) if model.kind != "ipdt" else None
+    static_gain = float(model.params["K"]) if not model.integrating else None
     static_gain_dc = None
-    if model.kind != "ipdt" and abs(u_mean - record.bias) > 0.05 * d and i1 > i0:
+    if not model.integrating and abs(u_mean - record.bias) > 0.05 * d and i1 > i0:
         static_gain_dc = float((np.mean(y[i0:i1]) - y[0]) / (u_mean - record.bias))
-    if model.kind == "ipdt" and abs(cyc.asymmetry) > 0.05:
+    if model.integrating and abs(cyc.asymmetry) > 0.05:
         warnings.append(
             f"The half-periods differ by {abs(cyc.asymmetry):.0%}: a load acts on this "
             f"integrating loop; the trim is about {bias_est:.4g} (relay centred on "

@@ -29,13 +29,19 @@ __all__ = [
 ]
 
 
+def _trim_leading(p: np.ndarray) -> np.ndarray:
+    """``p`` without its leading zero coefficients (what ``np.trim_zeros(p, "f")`` does)."""
+    nz = np.flatnonzero(p)
+    return p[nz[0]:] if len(nz) else p[:0]
+
+
 def as_tf(model) -> tuple[np.ndarray, np.ndarray, float]:
     """Return ``(num, den, delay_s)`` from a tuple or from anything with a ``tf()`` method."""
     if hasattr(model, "tf"):
         model = model.tf()
     num, den, delay = model
-    num = np.trim_zeros(np.atleast_1d(np.asarray(num, dtype=float)), "f")
-    den = np.trim_zeros(np.atleast_1d(np.asarray(den, dtype=float)), "f")
+    num = _trim_leading(np.atleast_1d(np.asarray(num, dtype=float)))
+    den = _trim_leading(np.atleast_1d(np.asarray(den, dtype=float)))
     if len(num) == 0:
         num = np.zeros(1)
     return num, den, float(delay)
@@ -76,12 +82,32 @@ def _expm_small(M: np.ndarray) -> np.ndarray:
     A = M / (2.0 ** s)
     E = np.eye(n)
     term = np.eye(n)
-    for k in range(1, 16):
+    for k in range(1, 13):  # ||A|| <= 1/4: the remainder is below 1e-16
         term = term @ A / k
         E = E + term
     for _ in range(s):
         E = E @ E
     return E
+
+
+def _tf2ss_siso(num: np.ndarray, den: np.ndarray):
+    """Controller canonical form of a proper SISO ``num/den`` (the same realisation as
+    :func:`scipy.signal.tf2ss`, built directly: that function's generality costs more than the
+    discretisation itself inside a fit loop)."""
+    den = np.asarray(den, dtype=float)
+    num = np.asarray(num, dtype=float)
+    a = den / den[0]
+    b = np.concatenate([np.zeros(len(den) - len(num)), num]) / den[0]
+    n = len(a) - 1
+    A = np.zeros((n, n))
+    A[0, :] = -a[1:]
+    if n > 1:
+        A[1:, :-1] = np.eye(n - 1)
+    B = np.zeros((n, 1))
+    B[0, 0] = 1.0
+    D = np.array([[b[0]]])
+    C = (b[1:] - b[0] * a[1:]).reshape(1, n)
+    return A, B, C, D
 
 
 def _phi_gamma(A: np.ndarray, B: np.ndarray, tau: float) -> tuple[np.ndarray, np.ndarray]:
@@ -117,21 +143,20 @@ def zoh_discretize(num, den, delay_s: float, dt: float) -> DiscreteModel:
         else:
             b = np.array([g])
         return DiscreteModel(b, np.array([1.0]), m, phi, e, e, np.zeros((1, 0)), g, theta > 0)
-    A, B, C, D = signal.tf2ss(num, den)
+    A, B, C, D = _tf2ss_siso(num, den)
     n = A.shape[0]
-    phi, _ = _phi_gamma(A, B, dt)
     phi_a, g0 = _phi_gamma(A, B, dt - theta)
     if theta > 0:
-        _, gth = _phi_gamma(A, B, theta)
+        phi_th, gth = _phi_gamma(A, B, theta)
         g1 = phi_a @ gth
+        phi = phi_a @ phi_th  # exp(A dt) = exp(A (dt - theta)) exp(A theta)
     else:
         g1 = np.zeros((n, 1))
+        phi = phi_a
     d = float(D.ravel()[0]) if D.size else 0.0
-    num0, a = signal.ss2tf(phi, g0, C, np.zeros((1, 1)))
-    num1, _ = signal.ss2tf(phi, g1, C, np.zeros((1, 1)))
-    num0 = np.ravel(num0)
-    num1 = np.ravel(num1)
-    a = np.ravel(a)
+    a = np.real(np.poly(phi))
+    num0 = _markov_numerator(phi, g0, C.ravel(), a)
+    num1 = _markov_numerator(phi, g1, C.ravel(), a)
     b = np.zeros(n + 2)
     b[: n + 1] += num0
     b[1:] += num1
@@ -142,6 +167,24 @@ def zoh_discretize(num, den, delay_s: float, dt: float) -> DiscreteModel:
             b[: n + 1] += d * a
     a_full = np.concatenate([a, [0.0]])
     return DiscreteModel(b, a_full, m, phi, g0.ravel(), g1.ravel(), C.ravel(), d, theta > 0)
+
+
+def _markov_numerator(phi: np.ndarray, g: np.ndarray, c: np.ndarray, a: np.ndarray
+                      ) -> np.ndarray:
+    """Numerator (in ``z^-1``, length n+1) of ``c (zI - phi)^-1 g`` given its denominator ``a``.
+
+    The transfer function's expansion in ``z^-1`` is the Markov sequence ``h_k = c phi^(k-1) g``
+    (``h_0 = 0``); multiplying by ``a`` and truncating after ``n`` terms gives the numerator
+    exactly (what :func:`scipy.signal.ss2tf` returns, at a fraction of its cost).
+    """
+    n = phi.shape[0]
+    g = np.asarray(g, dtype=float).ravel()
+    h = np.zeros(n + 1)
+    v = g
+    for k in range(1, n + 1):
+        h[k] = float(c @ v)
+        v = phi @ v
+    return np.convolve(a, h)[: n + 1]
 
 
 def lsim_zoh(model, dt: float, u: np.ndarray, u_before: float = 0.0) -> np.ndarray:

@@ -14,7 +14,10 @@ Tuning: every PI candidate of ``tune`` is applied to the TRUE loop (plant plus h
 hold); ``ms`` is its maximum sensitivity there and ``iae_ratio`` its load-step IAE divided by that
 of the Ms <= 1.4 IAE-optimal PI designed on the true loop.
 
-Usage: python tests/bench/identify.py [--json] [--quick] [--jobs N]
+A recommended PI that is unstable on the true loop shows as Ms = inf and is counted in
+``goal_tuning.unstable_on_true_plant``.
+
+Usage: python tests/bench/identify.py [--json] [--quick] [--jobs N] [--plants a,b]
 """
 
 from __future__ import annotations
@@ -126,7 +129,7 @@ def run_plant(args):
                          "tu_rel_err": None, "error": str(exc)})
             continue
         el = time.perf_counter() - t0
-        timing.append((len(rec.t_s), el, time.process_time() - c0))
+        timing.append((len(rec.t_s), el, time.process_time() - c0, name, noise))
         for m in METHODS:
             p = ident.ultimate_plant[m]
             rows.append({"plant": name, "noise": noise, "method": m,
@@ -154,11 +157,15 @@ def summarize(results, noises):
         sel = [r for r in rows if r["method"] == m and r["noise"] == target_noise]
         if not sel:
             continue
+        wk = max(sel, key=lambda r: abs(r["ku_rel_err"]))
+        wt = max(sel, key=lambda r: abs(r["tu_rel_err"]))
         summ["methods"][m] = {
             "noise": target_noise,
-            "max_abs_ku_rel_err": max(abs(r["ku_rel_err"]) for r in sel),
-            "max_abs_tu_rel_err": max(abs(r["tu_rel_err"]) for r in sel),
+            "max_abs_ku_rel_err": abs(wk["ku_rel_err"]),
+            "max_abs_tu_rel_err": abs(wt["tu_rel_err"]),
             "median_abs_ku_rel_err": statistics.median(abs(r["ku_rel_err"]) for r in sel),
+            "worst_ku_plant": wk["plant"],
+            "worst_tu_plant": wt["plant"],
         }
     errors = [r for r in rows if r["method"] == "error"]
     best = summ["methods"].get("model_fit")
@@ -175,6 +182,9 @@ def summarize(results, noises):
             "noise": target_noise,
             "rules_recommended": sorted({t["rule"] for t in rec}),
             "max_ms": max(t["ms"] for t in rec),
+            "max_ms_plant": max(rec, key=lambda t: t["ms"])["plant"],
+            "max_iae_ratio_plant": max(rec, key=lambda t: t["iae_ratio"])["plant"],
+            "unstable_on_true_plant": sum(1 for t in rec if not np.isfinite(t["ms"])),
             "median_iae_ratio": statistics.median(ratios),
             "max_iae_ratio": max(ratios),
             "ms_ok": max(t["ms"] for t in rec) <= 1.5,
@@ -193,11 +203,13 @@ def summarize(results, noises):
         # wall time depends on machine load; CPU time of the worker process is the steadier figure
         # the fits compare at most ~2000 rows, so the cost per record is nearly independent of
         # its length: report seconds per record with the sample counts
-        wall = [s for _, s, _ in tim]
-        cpu = [c for _, _, c in tim]
+        wall = [x[1] for x in tim]
+        cpu = [x[2] for x in tim]
+        slow = max(tim, key=lambda x: x[2])
         summ["identify_seconds_per_record"] = {
-            "samples_median": statistics.median(n for n, _, _ in tim),
-            "samples_max": max(n for n, _, _ in tim),
+            "samples_median": statistics.median(x[0] for x in tim),
+            "samples_max": max(x[0] for x in tim),
+            "cpu_max_record": f"{slow[3]} at noise {slow[4]:g} ({slow[0]} samples)",
             "wall_median": statistics.median(wall), "wall_max": max(wall),
             "cpu_median": statistics.median(cpu), "cpu_max": max(cpu),
             "load_average_1min": os.getloadavg()[0] if hasattr(os, "getloadavg") else None}
