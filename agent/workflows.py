@@ -406,6 +406,8 @@ def relay_experiment(stand: Stand, lp: LoopPlan, plan: Plan, *, trim: float, hys
                       "sample_time_s": 1.0 / stand.info.loop_rate_hz,
                       "sampling_delay_s": SAMPLING_DELAY_TICKS / stand.info.loop_rate_hz,
                       "controller": lp.controller, "ms_target": lp.ms_target,
+                      # an angle (height) is the integral of the rate its inner loop holds
+                      "integrating": True if lp.loop in ("angle", "heave") else None,
                       "output_limit": stand.session.values.get(f"{lp.axis}.{lp.loop}.out_limit")}
     summary = {"periods_after_ramp": decision.periods_after_ramp,
                "amplitude_seen": decision.amplitude_seen, "period_s": decision.period_s,
@@ -773,5 +775,6 @@ def cascade_checks(loops: list[LoopResult]) -> list[dict]:
             continue
         chk = analysis.cascade_check(inner.bandwidth_rad_s, lr.bandwidth_rad_s)
         out.append({"axis": lr.axis, "inner": inner.key, "outer": lr.key,
-                    "ratio": _f(chk.ratio), "ok": bool(chk.ok), "message": chk.message})
+                    "ratio": _f(chk.ratio), "ok": bool(chk.ok),
+                    "message": f"{lr.axis}: {chk.message}"})
     return out

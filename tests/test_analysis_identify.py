@@ -230,3 +230,20 @@ def test_richer_family_must_beat_the_noise_to_be_chosen():
     neg = {"fopdt": m("fopdt", 0.02), "sopdt": Model("sopdt", {"K": -1.0, "T": 1.0, "L": 0.1,
                                                                "zeta": 1.0}, 0.001, 0.1)}
     assert select_model(neg, 2000, amp, noise_std=noise).kind == "fopdt"
+
+
+def test_integrating_prior_restricts_the_model_choice():
+    # An integrator with lag, e^(-0.02 s) / (s (0.05 s + 1)): told that the loop integrates, the
+    # chosen model must be an integrating one and its ultimate point match python-control's
+    # margins of the true plant (python-control, margin(); Padé approximation of the delay).
+    import control
+    from agent.analysis import identify, simulate_relay
+    num, den, L = [1.0], [0.05, 1.0, 0.0], 0.02
+    rec = simulate_relay(num, den, L, 0.5, 0.0, 0.0, 0.001, 4.0)
+    from dataclasses import replace
+    ident = identify(replace(rec, integrating=True))
+    assert ident.model.integrating
+    g = control.tf(num, den) * control.tf(*control.pade(L + rec.sampling_delay_s, 10))
+    gm, _, wcg, _ = control.margin(g)
+    assert ident.best.ku == pytest.approx(gm, rel=0.02)
+    assert ident.best.tu_s == pytest.approx(2 * np.pi / wcg, rel=0.01)

@@ -216,6 +216,9 @@ def identify(record: RelayRecord) -> Identification:
     noise_mad = _noise_mad(y)
     models = fit_models(dt, u, y, per, cyc.amplitude, u_ref=float(record.bias),
                         noise_std=noise_mad)
+    if record.integrating is not None:  # the host's prior knowledge of the loop's physics
+        kind_ok = {k: m for k, m in models.items() if m.integrating == record.integrating}
+        models = kind_ok or models
     model = select_model(models, len(y), cyc.amplitude, noise_std=noise_mad)
     ts_half = 0.5 * dt
     extra = max(float(record.sampling_delay_s) - ts_half, 0.0)

@@ -53,6 +53,11 @@ class RelayRecord:
         Loop sample time of the board.
     sampling_delay_s : float
         Delay added by the board's sampling (see the module docstring); 0 when unknown.
+    integrating : bool or None
+        What the host knows of the loop's physics: True when the measurement integrates the
+        loop's output (an angle loop around a rate loop, a height loop around a climb-rate
+        loop), False when it cannot, None to let the data decide. With True or False only
+        model families of that kind are fitted candidates for the choice.
     """
 
     t_s: np.ndarray
@@ -64,6 +69,7 @@ class RelayRecord:
     bias: float
     sample_time_s: float
     sampling_delay_s: float = 0.0
+    integrating: bool | None = None
 
 
 def _finite_scalar(name: str, value: object) -> float:

@@ -123,4 +123,5 @@ def relay_record_from_rows(columns: dict[str, np.ndarray], analysis_input: dict)
     return RelayRecord(t_s=t_s, y=y, u=u, setpoint=float(ai["setpoint"]),
                        amplitude=float(ai["amplitude"]), hysteresis=float(ai["hysteresis"]),
                        bias=float(ai["bias"]), sample_time_s=float(ai["sample_time_s"]),
-                       sampling_delay_s=float(ai["sampling_delay_s"]))
+                       sampling_delay_s=float(ai["sampling_delay_s"]),
+                       integrating=ai.get("integrating"))

@@ -256,7 +256,7 @@ def _model_over_data(ident, cols: dict, ai: dict) -> tuple[np.ndarray, np.ndarra
     win = (cols["time_us"] >= int(ai["t_start_us"])) & (cols["time_us"] <= int(ai["t_end_us"]))
     tw = t[win] - t[win][0]
     cols_ls = [np.ones(int(win.sum()))]
-    if model.kind == "ipdt":
+    if model.integrating:
         cols_ls.append(tw)
     X = np.column_stack(cols_ls)
     coef, *_ = np.linalg.lstsq(X, y[win] - resp[win], rcond=None)
