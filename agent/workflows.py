@@ -312,7 +312,8 @@ def noise_check(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = _
 
 
 def relay_experiment(stand: Stand, lp: LoopPlan, plan: Plan, *, trim: float, hysteresis: float,
-                     setpoint: float, progress: ProgressFn = _quiet,
+                     setpoint: float, inner_amplitude: float | None = None,
+                     progress: ProgressFn = _quiet,
                      stop: threading.Event | None = None, exp_id: str | None = None) -> dict:
     """Run the relay with amplitude ramp and bias centring until the oscillation converges.
     Returns the analysis input (window and relay parameters), the supervisor's summary and the
@@ -322,6 +323,11 @@ def relay_experiment(stand: Stand, lp: LoopPlan, plan: Plan, *, trim: float, hys
     target = plan.relay_target * threshold
     out_limit = stand.session.values.get(f"{lp.axis}.{lp.loop}.out_limit", 1.0)
     ceiling = lp.max_amplitude if lp.max_amplitude is not None else 0.5 * out_limit
+    if inner_amplitude and lp.max_amplitude is None:
+        # An outer relay commands the inner loop's setpoint. A swing larger than the one the
+        # inner loop's own relay reached with half the actuator would saturate the actuator and
+        # the oscillation would no longer be the linear loop's (common practice, no source).
+        ceiling = min(ceiling, 1.5 * inner_amplitude)
     sup = RelaySupervisor(amplitude=0.2 * ceiling, bias=trim, target=target, ceiling=ceiling)
     exp_id = exp_id or f"{lp.axis}-{lp.loop}-relay"
     exp = _start_experiment_log(stand, exp_id, _meta(
@@ -602,9 +608,10 @@ def verify_step(stand: Stand, lp: LoopPlan, plan: Plan, cand, *, setpoint: float
 
 
 def tune_loop(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = _quiet,
-              stop: threading.Event | None = None) -> LoopResult:
+              stop: threading.Event | None = None, inner: LoopResult | None = None) -> LoopResult:
     """Noise/trim check, relay with ramp, identification, tuning; then apply and verify as the
-    plan says, rolling back to the previous gains when the verification fails."""
+    plan says, rolling back to the previous gains when the verification fails. ``inner``, the
+    result of this axis's rate loop when it was tuned in the same run, bounds an outer relay."""
     check_against_device(Plan(loops=(lp,)), stand.info.axes)
     res = LoopResult(lp.key, lp.axis, lp.loop, lp.controller)
     stand.emit("loop", {"key": lp.key, "status": "running"})
@@ -612,8 +619,10 @@ def tune_loop(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = _qu
     res.experiments.append(f"{lp.axis}-{lp.loop}-hold")
     res.noise_std, res.trim = noise["noise_std"], noise["trim"]
     res.hysteresis = 3.0 * res.noise_std  # 2-3 noise standard deviations (common practice)
+    inner_amp = (inner.relay or {}).get("amplitude_seen") if inner is not None else None
     run = relay_experiment(stand, lp, plan, trim=res.trim, hysteresis=res.hysteresis,
-                           setpoint=noise["setpoint"], progress=progress, stop=stop)
+                           setpoint=noise["setpoint"], inner_amplitude=inner_amp,
+                           progress=progress, stop=stop)
     res.experiments.append(run["exp_id"])
     res.relay, res.cross_coupling = run["relay"], run["cross_coupling"]
     progress(Progress("analysis", f"{lp.key}: identifying the loop", lp.key))
@@ -709,8 +718,10 @@ def autotune(stand: Stand, plan: Plan, progress: ProgressFn = _quiet,
         for i, lp in enumerate(plan.loops):
             progress(Progress("info", f"loop {i + 1} of {total}: {lp.key}", lp.key,
                               fraction=i / total))
+            inner = next((r for r in result.loops if r.axis == lp.axis and r.loop == "rate"
+                          and lp.loop != "rate"), None)
             try:
-                lr = tune_loop(stand, lp, plan, progress, stop)
+                lr = tune_loop(stand, lp, plan, progress, stop, inner=inner)
             except WorkflowError as exc:
                 lr = LoopResult(lp.key, lp.axis, lp.loop, lp.controller, status="failed",
                                 message=str(exc))

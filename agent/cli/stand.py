@@ -157,22 +157,23 @@ def _summary_tables(loops) -> list[Table]:
     """Two narrow tables (identification, gains) so an 80-column terminal shows them whole."""
     ident = Table("loop", "status", "Ku", "Tu [s]", "model", "method", title="identification",
                   title_justify="left")
-    gains = Table("loop", "rule", "kp", "ki", "kd", "Ms", "verification",
-                  title="gains", title_justify="left")
+    gains = Table("loop", "rule", "kp", "ki", "kd", "Ms", "step", "os",
+                  title="gains (step: verification step test; os: its overshoot)",
+                  title_justify="left")
+    gains.columns[1].no_wrap = True
     for lr in loops:
         d = lr.to_dict()
         ver = d.get("verification") or {}
         meas = ver.get("measured") or {}
         vtext = ("pass" if ver.get("passed") else "FAIL") if ver else "-"
-        if ver and meas.get("overshoot") is not None:
-            vtext += f" ({meas['overshoot']:.0%} os)"
+        os_text = f"{meas['overshoot']:.0%}" if meas.get("overshoot") is not None else "-"
         ch = lr.chosen
         ident.add_row(lr.key, lr.status, _g(d.get("ultimate_gain")),
                       _g(d.get("ultimate_period_s")), (d.get("model") or {}).get("kind", "-"),
                       d.get("ultimate_method", "-"))
         gains.add_row(lr.key, ch.rule if ch else "-", _g(ch.kp if ch else None),
                       _g(ch.ki if ch else None), _g(ch.kd if ch else None),
-                      _g(ch.ms if ch else None), vtext)
+                      _g(ch.ms if ch else None), vtext, os_text)
     return [ident, gains]
 
 
