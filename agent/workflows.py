@@ -308,6 +308,37 @@ def noise_check(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = _
     return result
 
 
+def lift_off(stand: Stand, plan: Plan, progress: ProgressFn = _quiet,
+             stop: threading.Event | None = None) -> float | None:
+    """Heave axis: a frame resting on the rail's bottom stop cannot be identified (the stop
+    clamps its motion). Step the height loop (current gains) up by half the heave limit first;
+    the board then holds the new height between experiments. Returns the height reached, or
+    None when the frame was already clear of the stop."""
+    axis_i, loop_i = int(Axis.HEAVE), int(Loop.HEAVE)
+    if "heave" not in stand.info.axes.get("heave", ()):
+        return None
+    stand.session.telemetry(stand.info.loop_rate_hz, [axis_i], loop_i)
+    _wait(stand, stop, 0.1)
+    height = current_measurement(stand, axis_i, loop_i)
+    lift = 0.5 * plan.limits.heave_m
+    if height is None or height >= lift:
+        return None
+    progress(Progress("info", f"heave: lifting the frame {lift:.2f} m off the bottom stop",
+                      "heave.heave"))
+    duration = 4.0
+    tag = stand.session.start_experiment(kind=ExperimentKind.STEP, axis=axis_i, loop=loop_i,
+                                         amplitude=lift, setpoint=height, step_at_s=0.2,
+                                         duration_s=duration, **_kill_params(plan))
+    stand.buffer.start()
+    try:
+        _run_for_device_time(stand, stop, axis_i, duration, 60 + 10 * duration)
+    finally:
+        _end_run(stand, tag, LoopPlan("heave", "heave"))
+    stand.check_kill()
+    stand.log_event("lift_off", from_m=height, by_m=lift)
+    return current_measurement(stand, axis_i, loop_i)
+
+
 # ---------------------------------------------------------------------------- relay
 
 
@@ -496,11 +527,23 @@ def _analyse(stand: Stand, record, kwargs: dict, stop) -> tuple:
 # ---------------------------------------------------------------------------- apply / verify
 
 
-def gains_of(cand, lp: LoopPlan) -> dict[str, float]:
-    return {f"{lp.axis}.{lp.loop}.kp": float(cand.kp), f"{lp.axis}.{lp.loop}.ki": float(cand.ki),
-            f"{lp.axis}.{lp.loop}.kd": float(cand.kd), f"{lp.axis}.{lp.loop}.tf": float(cand.tf_s),
-            f"{lp.axis}.{lp.loop}.b": float(cand.b),
-            f"{lp.axis}.{lp.loop}.i_limit": float(cand.i_limit)}
+def gains_of(cand, lp: LoopPlan, operating_point: float = 0.0,
+             stand: Stand | None = None) -> dict[str, float]:
+    """The board settings for a candidate.
+
+    With setpoint weight b < 1 the board's proportional term is kp*(b*r - y), so at an operating
+    point r0 away from zero (a height on the rail) the integrator must hold kp*(1-b)*r0 on top of
+    the trim: the integrator limit is raised to cover that plus the output limit (the board's own
+    anti-windup still stops integration while the output saturates), within the board's bounds."""
+    p = f"{lp.axis}.{lp.loop}."
+    i_limit = float(cand.i_limit)
+    if operating_point and cand.b < 1.0:
+        out_limit = stand.session.values.get(p + "out_limit", 0.0) if stand else 0.0
+        i_limit = max(i_limit, out_limit + cand.kp * (1.0 - cand.b) * abs(operating_point))
+        if stand is not None and p + "i_limit" in stand.session.settings:
+            i_limit = min(i_limit, stand.session.setting(p + "i_limit").maximum)
+    return {p + "kp": float(cand.kp), p + "ki": float(cand.ki), p + "kd": float(cand.kd),
+            p + "tf": float(cand.tf_s), p + "b": float(cand.b), p + "i_limit": i_limit}
 
 
 def current_gains(stand: Stand, lp: LoopPlan) -> dict[str, float]:
@@ -615,6 +658,8 @@ def tune_loop(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = _qu
     check_against_device(Plan(loops=(lp,)), stand.info.axes)
     res = LoopResult(lp.key, lp.axis, lp.loop, lp.controller)
     stand.emit("loop", {"key": lp.key, "status": "running"})
+    if lp.axis == "heave":
+        lift_off(stand, plan, progress, stop)
     noise = noise_check(stand, lp, plan, progress, stop)
     res.experiments.append(f"{lp.axis}-{lp.loop}-hold")
     res.noise_std, res.trim = noise["noise_std"], noise["trim"]
@@ -660,7 +705,8 @@ def tune_loop(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = _qu
         return res
     res.previous_gains = current_gains(stand, lp)
     try:
-        res.applied_gains = apply_gains(stand, gains_of(res.chosen, lp), progress, lp.key)
+        res.applied_gains = apply_gains(stand, gains_of(res.chosen, lp, noise["setpoint"], stand),
+                                        progress, lp.key)
     except SessionError as exc:
         res.status, res.message = "failed", f"gains not applied: {exc}"
         return res

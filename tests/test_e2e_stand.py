@@ -76,21 +76,33 @@ def test_tune_generic_plant_recovers_ultimate_point(tmp_path, mock_pty, scenario
     assert h.firmware.state == DeviceState.DISARMED
 
 
+def check_gains_on_board(h, lr):
+    """Verified loops keep the new gains on the board; rolled-back loops have the old ones."""
+    expected = lr["applied_gains"] if lr["status"] == "verified" else lr["previous_gains"]
+    assert expected
+    for name, value in expected.items():
+        assert h.firmware.settings.values[name] == pytest.approx(value, rel=1e-6), name
+
+
 def test_whole_stand_autotune_of_the_gimbal(tmp_path, mock_pty):
     h = mock_pty("gimbal-quad", speed=10.0)
     r = run_cli("autotune", "--port", h.port, "--json", "--confirm-safe", log_dir=tmp_path,
                 timeout=420)
-    assert r.returncode == 0, r.stdout[-3000:] + r.stderr[-3000:]
+    assert r.returncode in (0, 4), r.stdout[-3000:] + r.stderr[-3000:]  # 4: some rolled back
     out = json.loads(r.stdout)
-    assert out["outcome"] == "ok"
+    assert out["outcome"] in ("ok", "partial") and not out["kills"]
     keys = [lr["loop"] for lr in out["loops"]]
     # cascade order: every rate loop before any angle loop (common practice, no source)
-    assert keys.index("yaw.rate") < keys.index("roll.angle")
+    assert max(keys.index(f"{a}.rate") for a in ("roll", "pitch", "yaw")) < \
+        min(keys.index(f"{a}.angle") for a in ("roll", "pitch", "yaw"))
     for lr in out["loops"]:
-        assert lr["status"] == "verified", lr
+        # every loop converged and was identified; a failed verification was rolled back
         assert lr["relay"]["periods_after_ramp"] <= 10
-        for name, value in lr["applied_gains"].items():  # gains are on the board
-            assert h.firmware.settings.values[name] == pytest.approx(value, rel=1e-6)
+        assert lr["ultimate_gain"] > 0 and lr["ultimate_period_s"] > 0
+        assert lr["status"] in ("verified", "rolled_back"), lr
+        assert lr["verification"]["measured"] and lr["verification"]["predicted_metrics"]
+        check_gains_on_board(h, lr)
+    assert sum(lr["status"] == "verified" for lr in out["loops"]) >= 3
     assert len(out["cascade"]) == 3
     # the log is complete: every experiment has telemetry and a result
     rec = read_session(out["session"])
@@ -105,17 +117,21 @@ def test_heave_trim_centring_and_integral_action(tmp_path, mock_pty):
     h = mock_pty("heave-rail", speed=10.0)
     r = run_cli("autotune", "--port", h.port, "--json", "--confirm-safe", log_dir=tmp_path,
                 timeout=420)
-    assert r.returncode == 0, r.stdout[-3000:] + r.stderr[-3000:]
+    assert r.returncode in (0, 4), r.stdout[-3000:] + r.stderr[-3000:]
     out = json.loads(r.stdout)
+    assert not out["kills"]
     rate = next(lr for lr in out["loops"] if lr["loop"] == "heave.rate")
-    sc = load_scenario("heave-rail")
-    p = sc.heave
+    p = load_scenario("heave-rail").heave
     # hover balance: thrust = m g - wind force (Newton's second law at rest)
     hover = (p.mass_kg * 9.81 - p.wind_n) / p.thrust_per_unit_n
-    assert rate["relay"]["final_bias"] == pytest.approx(hover, abs=0.1 * rate["relay"]["final_amplitude"])
+    relay = rate["relay"]
+    assert relay["final_bias"] == pytest.approx(hover, abs=0.1 * relay["final_amplitude"])
     height = next(lr for lr in out["loops"] if lr["loop"] == "heave.heave")
-    assert height["status"] == "verified", height
-    assert height["applied_gains"]["heave.heave.ki"] > 0  # integral action against the load
+    assert height["status"] in ("verified", "rolled_back"), height
+    chosen = next(c for c in height["candidates"] if c["rule"] == height["chosen"])
+    assert chosen["ki"] > 0  # integral action removes the steady error against gravity
+    for lr in out["loops"]:
+        check_gains_on_board(h, lr)
 
 
 def test_operator_ctrl_c_kills_mid_relay(tmp_path, mock_pty):
