@@ -35,6 +35,9 @@ def register(subparsers) -> argparse.ArgumentParser:
     p.add_argument("--speed", default="realtime",
                    help="'realtime' (default), a factor N (N x real time) or 'max'")
     p.add_argument("--seed", type=int, default=0, help="seed for noise, tokens, faults")
+    p.add_argument("--store", metavar="FILE",
+                   help="keep persisted settings in this JSON file across restarts (loaded at "
+                        "start, written when the host persists)")
     p.add_argument("--loss", type=float, default=0.0, metavar="P",
                    help="byte loss probability on the link (both ways)")
     p.add_argument("--flip", type=float, default=0.0, metavar="P",
@@ -73,7 +76,7 @@ def run(args) -> int:
         parse_speed(args.speed)
         transport = "tcp" if args.tcp is not None else "pty"
         handle = start_mock(sc, transport=transport, speed=args.speed, seed=args.seed,
-                            faults=faults, tcp_port=args.tcp or 0)
+                            faults=faults, tcp_port=args.tcp or 0, store=args.store)
     except (ScenarioError, ValueError, OSError) as exc:
         print(f"error: {exc}", file=sys.stderr)
         return 2

@@ -45,6 +45,7 @@ from __future__ import annotations
 
 import math
 from collections import OrderedDict, deque
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -253,6 +254,9 @@ class Firmware:
         self._last_reply = b""
         self._deferred: list[bytes] | None = None
         self.persisted: dict[str, float] | None = None
+        # called with the settings on SettingsPersist (the runner's store file); an OSError
+        # there refuses the request
+        self.on_persist: Callable[[dict[str, float]], None] | None = None
         self.events: deque[DeviceEvent] = deque(maxlen=1000)
         self.stats = {"frames_in": 0, "requests": 0, "replies_from_cache": 0, "refused": 0,
                       "telemetry_sent": 0, "events_sent": 0, "output_dropped": 0}
@@ -816,7 +820,14 @@ class Firmware:
                    frame.seq, reply=True)
 
     def _on_settings_persist(self, frame, msg) -> None:
-        self.persisted = dict(self.settings.values)  # the mock's "non-volatile" store (memory)
+        values = dict(self.settings.values)
+        if self.on_persist is not None:
+            try:
+                self.on_persist(values)  # the store file (see mock_device.store)
+            except OSError as exc:
+                self._refuse(frame, RefuseCode.STORAGE, f"persist failed: {exc}")
+                return
+        self.persisted = values  # the mock's non-volatile copy
         self._ack(frame)
 
     def _on_arm_request(self, frame, msg) -> None:

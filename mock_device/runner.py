@@ -25,6 +25,7 @@ link that accepts nothing (nobody reading) does not stop the clock. In real time
 from __future__ import annotations
 
 import math
+import os
 import threading
 import time
 
@@ -232,7 +233,8 @@ class MockHandle:
 
 
 def start_mock(scenario: Scenario | str, transport: str = "pty", speed=1.0, seed: int = 0,
-               faults: FaultConfig | dict | None = None, tcp_port: int = 0) -> MockHandle:
+               faults: FaultConfig | dict | None = None, tcp_port: int = 0,
+               store: str | os.PathLike | None = None) -> MockHandle:
     """Start a mock board in a background thread.
 
     Parameters
@@ -243,6 +245,8 @@ def start_mock(scenario: Scenario | str, transport: str = "pty", speed=1.0, seed
     seed : seeds plant noise, arming tokens and link faults
     faults : extra faults (FaultConfig or mapping) on top of the scenario's [faults]
     tcp_port : port for "tcp" (0 = any free port)
+    store : JSON file of the board's non-volatile settings (see mock_device.store): loaded at
+        start when it exists, written on SettingsPersist; None keeps persisted values in memory
 
     Returns
     -------
@@ -253,6 +257,16 @@ def start_mock(scenario: Scenario | str, transport: str = "pty", speed=1.0, seed
     extra = faults if isinstance(faults, FaultConfig) else FaultConfig.from_mapping(faults)
     cfg = FaultConfig.from_mapping(sc.faults).merged(extra)
     fw = Firmware(sc, seed=seed)  # applies the scenario's own stuck/block faults
+    if store is not None:
+        from .store import StoreError, load_store, save_store
+        saved = load_store(store, sc.device_id)
+        for name, value in saved.items():
+            try:
+                fw.set_setting(name, value)
+            except ValueError as exc:
+                raise StoreError(f"settings store {store}: {name}: {exc}") from None
+        fw.persisted = dict(fw.settings.values) if saved else None
+        fw.on_persist = lambda values: save_store(store, sc.device_id, values)
     for spec in extra.stuck:
         fw.schedule_stuck_sensor(*parse_stuck(spec))
     for axis in extra.block:

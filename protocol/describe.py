@@ -294,6 +294,8 @@ _NOTES = {
     ("RefuseCode", "NO_KEEPALIVE"): "ArmConfirm while the watchdog is not fresh",
     ("RefuseCode", "READ_ONLY"): "SettingWrite to a READ_ONLY setting; detail = setting id",
     ("RefuseCode", "NOT_A_REQUEST"): "a device-to-host type arrived at the device",
+    ("RefuseCode", "STORAGE"): "SettingsPersist could not write the non-volatile store; "
+                               "the settings in use are unchanged",
 }
 
 

@@ -110,6 +110,7 @@ class RefuseCode(enum.IntEnum):
     NO_KEEPALIVE = 12  # arming refused: no fresh keepalive from the host
     READ_ONLY = 13  # setting cannot be written
     NOT_A_REQUEST = 14  # the message is one a device sends, not one it accepts
+    STORAGE = 15  # the device could not write its non-volatile settings store
 
 
 class KillReason(enum.IntEnum):

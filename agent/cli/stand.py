@@ -15,7 +15,7 @@ from rich.console import Console
 from rich.progress import BarColumn, Progress as RichProgress, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
-from protocol.messages import KillReason
+from protocol.messages import Capability, KillReason
 
 from . import UserError
 
@@ -333,10 +333,17 @@ def cmd_settings(args) -> int:
             for name, value in values.items():
                 stand.session.setting(name).check(value)
             written = stand.session.write_many(values) if values else {}
+            if args.persist:
+                if not stand.info.capabilities & Capability.PERSIST:
+                    raise UserError(f"{stand.info.device_id} has no non-volatile settings store "
+                                    "(it does not offer persist); the values written stay "
+                                    "until it restarts")
+                stand.session.persist()
         except SessionError as exc:
             raise UserError(str(exc)) from None
         if args.json:
-            print(json.dumps({"written": written, "settings": [
+            print(json.dumps({"written": written, "persisted": bool(args.persist),
+                              "settings": [
                 {"name": s.name, "id": s.setting_id, "unit": s.unit, "min": s.minimum,
                  "max": s.maximum, "default": s.default, "value": stand.session.values.get(n)}
                 for n, s in stand.session.settings.items()]}, indent=2))
@@ -351,6 +358,8 @@ def cmd_settings(args) -> int:
             con.print(t)
             for n, v in written.items():
                 con.print(f"wrote {n} = {v:.6g}")
+            if args.persist:
+                con.print("stored the settings in the board's non-volatile memory")
     finally:
         stand.close("settings")
     return 0
@@ -381,6 +390,8 @@ def register(sub) -> None:
     p.add_argument("--baud", type=int, default=921600)
     p.add_argument("--set", action="append", metavar="NAME=VALUE",
                    help="write a setting (repeatable; every value is checked before any write)")
+    p.add_argument("--persist", action="store_true",
+                   help="then store the board's settings in its non-volatile memory")
     p.add_argument("--filter", default="", help="show only settings whose name contains this")
     p.add_argument("--json", action="store_true")
     p.set_defaults(func=cmd_settings)

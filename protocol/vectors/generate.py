@@ -195,6 +195,7 @@ REFUSE_CASES = {
     RefuseCode.NO_KEEPALIVE: (0x22, 0, "no keepalive within watchdog_s"),
     RefuseCode.READ_ONLY: (0x14, 0x0001, "setting is read-only"),
     RefuseCode.NOT_A_REQUEST: (0x51, 0x51, "telemetry is sent by devices"),
+    RefuseCode.STORAGE: (0x15, 0, "persist failed: no space left on device"),
 }
 
 
