@@ -114,21 +114,14 @@ class FaultyLink:
 
     def incoming(self, data: bytes, wall_s: float, device_s: float) -> bytes:
         """Bytes read from the link -> bytes the firmware gets now."""
-        if device_s >= self.cfg.drop_at_s:
-            self.dropped_after_cut += len(data)
-            return b""
-        data = self._mangle(data)
-        if not self.cfg.latency_s:
-            return data
-        if data:
-            self._in_q.append((wall_s + self.cfg.latency_s, data))
-        out = bytearray()
-        while self._in_q and self._in_q[0][0] <= wall_s:
-            out += self._in_q.popleft()[1]
-        return bytes(out)
+        return self._pass(self._in_q, data, wall_s, device_s)
 
     def outgoing(self, data: bytes, wall_s: float, device_s: float) -> bytes:
         """Bytes from the firmware -> bytes to put on the link now (each byte mangled once)."""
+        return self._pass(self._out_q, data, wall_s, device_s)
+
+    def _pass(self, queue, data: bytes, wall_s: float, device_s: float) -> bytes:
+        """One direction: cut after the drop time, mangle, then hold for the added latency."""
         if device_s >= self.cfg.drop_at_s:
             self.dropped_after_cut += len(data)
             return b""
@@ -136,10 +129,10 @@ class FaultyLink:
         if not self.cfg.latency_s:
             return data
         if data:
-            self._out_q.append((wall_s + self.cfg.latency_s, data))
+            queue.append((wall_s + self.cfg.latency_s, data))
         out = bytearray()
-        while self._out_q and self._out_q[0][0] <= wall_s:
-            out += self._out_q.popleft()[1]
+        while queue and queue[0][0] <= wall_s:
+            out += queue.popleft()[1]
         return bytes(out)
 
     def close(self) -> None:

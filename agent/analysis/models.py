@@ -172,6 +172,18 @@ def _unit_tf(kind: str, th: np.ndarray):
     return np.array([1.0]), np.array([T, 1.0, 0.0]), {"T": T}
 
 
+def _linear_fit(cols: list[np.ndarray], y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Least squares of ``y`` on the columns (scaled to unit norm): (residual, coefficients).
+    Small normal equations solved with a rank cut: mode columns can be nearly collinear."""
+    X = np.column_stack(cols)
+    scale = np.sqrt(np.sum(X * X, axis=0))
+    scale[scale == 0] = 1.0
+    Xs = X / scale
+    coef, *_ = np.linalg.lstsq(Xs.T @ Xs, Xs.T @ y, rcond=1e-13)
+    coef = coef / scale
+    return y - X @ coef, coef
+
+
 class _Fitter:
     """Variable-projection residual. ``variant`` "rest": the record starts at rest (plant at
     equilibrium for an unknown constant input before the first sample), fitted from the first
@@ -217,13 +229,7 @@ class _Fitter:
                 if m > 0:
                     st = np.concatenate([np.zeros(m), st[:-m]])
                 cols.append(signal.lfilter(dm.b, dm.a, st)[:: self.q])
-            X = np.column_stack(cols)
-            scale = np.sqrt(np.sum(X * X, axis=0))
-            scale[scale == 0] = 1.0
-            Xs = X / scale
-            coef, *_ = np.linalg.lstsq(Xs.T @ Xs, Xs.T @ self.ybar, rcond=1e-13)
-            coef = coef / scale
-            r = self.ybar - X @ coef
+            r, coef = _linear_fit(cols, self.ybar)
             c_step = coef[2] if self.kind in INTEGRATING_KINDS else 0.0
             # same layout as the free variant: [K, offset, ..., step coefficient]
             return r, np.array([coef[0], coef[1], c_step]), info, L
@@ -240,14 +246,7 @@ class _Fitter:
             cols.append(np.concatenate([np.zeros(j), base[: len(base) - j]])[::q])
         if self.kind in INTEGRATING_KINDS:
             cols.append(self.ramp)
-        X = np.column_stack(cols)
-        scale = np.sqrt(np.sum(X * X, axis=0))
-        scale[scale == 0] = 1.0
-        Xs = X / scale
-        # small normal equations solved with a rank cut (mode columns can be nearly collinear)
-        coef, *_ = np.linalg.lstsq(Xs.T @ Xs, Xs.T @ self.ybar, rcond=1e-13)
-        coef = coef / scale
-        r = self.ybar - X @ coef
+        r, coef = _linear_fit(cols, self.ybar)
         return r, coef, info, L
 
     def residual(self, x: np.ndarray) -> np.ndarray:
