@@ -15,8 +15,20 @@ half-way first, then by the secant through the last two tries, at most ``max_bia
 the mean is taken over two whole periods since noise on the switching instants makes one
 period's mean noisy.
 Convergence: after the last change one period is discarded as transient; then the oscillation is
-converged once three consecutive periods agree within ``period_tol`` and ``amp_tol`` — at most
-four periods after the ramp when the loop is linear and quiet.
+converged once three consecutive periods agree within ``period_tol`` and ``amp_tol`` (the
+amplitude judged on each period's first harmonic, which averages noise out) — at most
+four periods after the ramp when the loop is linear. On a noisy measurement (``noise_std``, from
+the hold) the periods scatter even when the limit cycle is stationary, so the tolerances widen
+to what the noise alone produces: a switching instant moves by about sigma / (a w) when the
+measurement crosses the switching level with slope a w, so one period (two rising edges) varies
+by at least sqrt(2) sigma / (2 pi a) = 0.23 sigma/a of itself, and the jittered switching makes
+the oscillation's own amplitude vary too. On the invented gimbal's rate loops (sigma/a = 0.05,
+where sensor noise, friction and quantisation all jitter the switching) the period of a
+stationary cycle varied by 0.6 sigma/a (standard deviation) and its first-harmonic amplitude by
+1.1 sigma/a; the range of three periods stays within about 2.5-3 such deviations, hence
+``1.5 sigma/a`` (plus two samples of period quantisation) and ``3 sigma/a``. A drift beyond
+that still keeps the relay running (own measurement; the crossing-time jitter sigma/slope is
+common practice, no source).
 """
 
 from __future__ import annotations
@@ -24,6 +36,15 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
+
+
+def _harmonic_amplitude(seg: np.ndarray) -> float:
+    """Amplitude of the fundamental of one whole period of samples."""
+    n = len(seg)
+    if n < 2:
+        return 0.0
+    phase = np.exp(-2j * np.pi * np.arange(n) / n)
+    return float(2.0 * abs(np.dot(seg - seg.mean(), phase)) / n)
 
 
 @dataclass(frozen=True)
@@ -52,6 +73,7 @@ class RelaySupervisor:
     max_periods_after_ramp: int = 10
     bias_tol: float = 0.1  # re-centre when |mean u - bias| > bias_tol * amplitude
     max_bias_moves: int = 4  # after this many re-centrings the bias is left alone
+    noise_std: float = 0.0  # measurement noise (standard deviation) from the hold
     no_switch_s: float = 5.0  # fail when the relay has not switched for this long (or 3x the
     # longest half-period seen, whichever is longer)
     _adjust_index: int = 0  # sample index of the last change
@@ -82,6 +104,9 @@ class RelaySupervisor:
         edges = rising[self.settle_periods:]
         periods = np.diff(t_s[edges])
         amps = np.array([(y[a:b].max() - y[a:b].min()) / 2 for a, b in zip(edges[:-1], edges[1:])])
+        # stationarity is judged on each period's first-harmonic amplitude: the peaks of a noisy
+        # record scatter with the noise, the harmonic averages it over the period
+        harm = np.array([_harmonic_amplitude(y[a:b]) for a, b in zip(edges[:-1], edges[1:])])
         lo, hi = (1 - self.amp_band) * self.target, (1 + self.amp_band) * self.target
         at_ceiling = self.amplitude >= self.ceiling * 0.999
         k = self.stable_periods
@@ -100,9 +125,12 @@ class RelaySupervisor:
                     return self._adjust(n, False, True, a_j, mean_u, float(periods[j]))
             if j + 1 >= k:
                 p, a = periods[j + 1 - k:j + 1], amps[j + 1 - k:j + 1]
+                h = harm[j + 1 - k:j + 1]
                 p_spread = (p.max() - p.min()) / p.mean()
-                a_spread = (a.max() - a.min()) / a.mean()
-                stable = p_spread <= self.period_tol and a_spread <= self.amp_tol
+                a_spread = (h.max() - h.min()) / h.mean()
+                p_tol, a_tol = self.tolerances(float(a.mean()), float(p.mean()),
+                                               float(np.median(np.diff(t_s[-20:]))))
+                stable = p_spread <= p_tol and a_spread <= a_tol
                 last_chance = j + 1 + self.settle_periods >= self.max_periods_after_ramp
                 if stable or last_chance:
                     note = "" if stable else (
@@ -116,6 +144,18 @@ class RelaySupervisor:
                                     amplitude_seen=float(a.mean()), period_s=float(p.mean()))
         return Decision("wait", self.amplitude, self.bias, amplitude_seen=float(amps[-1]),
                         period_s=float(periods[-1]))
+
+    def tolerances(self, amplitude: float, period_s: float = 0.0,
+                   dt: float = 0.0) -> tuple[float, float]:
+        """Period and amplitude spread (max - min over mean, three periods) accepted as
+        stationary at this oscillation amplitude: ``period_tol`` and ``amp_tol``, widened to
+        ``1.5 sigma/a`` and ``3 sigma/a`` on a noisy measurement (see the module docstring);
+        the period's then also gets the two samples by which noise can move two edges."""
+        ratio = self.noise_std / amplitude if amplitude > 0 and self.noise_std > 0 else 0.0
+        if ratio == 0.0:
+            return self.period_tol, self.amp_tol
+        quant = 2.0 * dt / period_s if period_s > 0 and dt > 0 else 0.0
+        return max(self.period_tol, 1.5 * ratio + quant), max(self.amp_tol, 3.0 * ratio)
 
     def _adjust(self, n: int, need_amp: bool, need_bias: bool, a_seen: float, mean_u: float,
                 period_s: float) -> Decision:

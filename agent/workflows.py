@@ -344,6 +344,7 @@ def lift_off(stand: Stand, plan: Plan, progress: ProgressFn = _quiet,
 
 def relay_experiment(stand: Stand, lp: LoopPlan, plan: Plan, *, trim: float, hysteresis: float,
                      setpoint: float, inner_amplitude: float | None = None,
+                     noise_std: float = 0.0,
                      progress: ProgressFn = _quiet,
                      stop: threading.Event | None = None, exp_id: str | None = None) -> dict:
     """Run the relay with amplitude ramp and bias centring until the oscillation converges.
@@ -359,7 +360,8 @@ def relay_experiment(stand: Stand, lp: LoopPlan, plan: Plan, *, trim: float, hys
         # inner loop's own relay reached with half the actuator would saturate the actuator and
         # the oscillation would no longer be the linear loop's (common practice, no source).
         ceiling = min(ceiling, 1.5 * inner_amplitude)
-    sup = RelaySupervisor(amplitude=0.2 * ceiling, bias=trim, target=target, ceiling=ceiling)
+    sup = RelaySupervisor(amplitude=0.2 * ceiling, bias=trim, target=target, ceiling=ceiling,
+                          noise_std=max(float(noise_std), 0.0))
     exp_id = exp_id or f"{lp.axis}-{lp.loop}-relay"
     exp = _start_experiment_log(stand, exp_id, _meta(
         stand, lp, "relay", amplitude=sup.amplitude, hysteresis=hysteresis, bias=trim,
@@ -667,6 +669,7 @@ def tune_loop(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = _qu
     inner_amp = (inner.relay or {}).get("amplitude_seen") if inner is not None else None
     run = relay_experiment(stand, lp, plan, trim=res.trim, hysteresis=res.hysteresis,
                            setpoint=noise["setpoint"], inner_amplitude=inner_amp,
+                           noise_std=res.noise_std,
                            progress=progress, stop=stop)
     res.experiments.append(run["exp_id"])
     res.relay, res.cross_coupling = run["relay"], run["cross_coupling"]

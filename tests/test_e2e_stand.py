@@ -101,11 +101,14 @@ def test_whole_stand_autotune_of_the_gimbal(tmp_path, mock_pty):
     for lr in out["loops"]:
         # every loop converged and was identified; a failed verification was rolled back
         assert lr["relay"]["periods_after_ramp"] <= 10
+        assert "not stationary" not in lr["relay"]["note"], lr["relay"]
         assert lr["ultimate_gain"] > 0 and lr["ultimate_period_s"] > 0
         assert lr["status"] in ("verified", "rolled_back"), lr
         assert lr["verification"]["measured"] and lr["verification"]["predicted_metrics"]
         check_gains_on_board(h, lr)
-    assert sum(lr["status"] == "verified" for lr in out["loops"]) >= 3
+    # tests/bench/autotune.py --runs 8 measured 47 of 48 loops verified (one rollback, a rate
+    # loop's step missing its prediction); one rollback is allowed here, not two
+    assert sum(lr["status"] == "verified" for lr in out["loops"]) >= 5
     assert len(out["cascade"]) == 3
     # the log is complete: every experiment has telemetry and a result
     rec = read_session(out["session"])

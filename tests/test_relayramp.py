@@ -9,9 +9,12 @@ from agent.relayramp import RelaySupervisor
 
 
 def run_loop(sup, K=2.0, T=0.05, L=0.01, load=0.0, integrating=False, dt=0.001, t_max=5.0,
-             poll_every=37, hysteresis=0.0):
+             poll_every=37, hysteresis=0.0, noise=0.0, seed=0, drift=0.0):
     """Relay around setpoint 0 on K e^{-Ls}/(Ts+1) (or K e^{-Ls}/s) with an input load, exact
-    zero-order-hold update per tick; the supervisor is polled every `poll_every` ticks."""
+    zero-order-hold update per tick; the supervisor is polled every `poll_every` ticks.
+    `noise`: white measurement noise (standard deviation) seen by the relay and recorded;
+    `drift`: the plant gain grows as e^(drift t) (a loop that is not stationary)."""
+    rng = np.random.default_rng(seed)
     n = int(t_max / dt)
     d = int(round(L / dt))
     a = math.exp(-dt / T)
@@ -20,16 +23,18 @@ def run_loop(sup, K=2.0, T=0.05, L=0.01, load=0.0, integrating=False, dt=0.001, 
     t, y, u, r = [], [], [], []
     relay = 1
     for k in range(n):
-        e = -x
+        ym = x + noise * rng.standard_normal()
+        e = -ym
         if e > hysteresis:
             relay = 1
         elif e < -hysteresis:
             relay = -1
         uk = sup.bias + relay * sup.amplitude
-        t.append(k * dt); y.append(x); u.append(uk); r.append(relay)
+        t.append(k * dt); y.append(ym); u.append(uk); r.append(relay)
         hist_u.append(uk)
         ud = hist_u[-1 - d] + load
-        x = x + K * ud * dt if integrating else a * x + (1 - a) * K * ud
+        kk = K * math.exp(drift * k * dt)
+        x = x + kk * ud * dt if integrating else a * x + (1 - a) * kk * ud
         if k % poll_every == poll_every - 1:
             dec = sup.decide(np.array(t), np.array(y), np.array(u), np.array(r))
             if dec.action in ("converged", "fail"):
@@ -93,3 +98,37 @@ def test_bias_converges_on_a_loop_with_static_gain(load):
     assert dec is not None and dec.action == "converged", dec
     assert dec.bias == pytest.approx(-load, abs=0.06 * 0.3 + 1e-9)
     assert sup.bias_moves <= sup.max_bias_moves
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_noisy_stationary_loop_converges_within_four_periods(seed):
+    # Noise of 8 % of the oscillation (the yaw loops of the invented gimbal see 15 %): the
+    # periods scatter by at least 0.23 sigma/a, beyond the fixed 2 %/5 % tolerances, but the
+    # limit cycle is stationary after the ramp (own derivation and measurement, see
+    # agent/relayramp.py; the crossing-time jitter sigma/slope is common practice, no source).
+    sigma = 0.008
+    sup = RelaySupervisor(amplitude=0.3, bias=0.0, target=0.1, ceiling=0.3, noise_std=sigma)
+    dec, _, _ = run_loop(sup, hysteresis=3 * sigma, noise=sigma, seed=seed)
+    assert dec is not None and dec.action == "converged", dec
+    assert dec.reason == ""  # stationary, not the give-up verdict
+    assert dec.periods_after_ramp <= 4
+
+
+def test_noise_tolerance_widens_only_with_the_noise():
+    sup = RelaySupervisor(amplitude=0.3, bias=0.0, target=0.1, ceiling=0.3)
+    assert sup.tolerances(0.1) == (sup.period_tol, sup.amp_tol)
+    sup.noise_std = 0.01
+    assert sup.tolerances(0.1) == pytest.approx((0.15, 0.3))
+    assert sup.tolerances(0.1, 0.05, 0.001) == pytest.approx((0.19, 0.3))  # + 2 samples
+    assert sup.tolerances(10.0) == (sup.period_tol, sup.amp_tol)  # quiet relative to a
+
+
+def test_drift_beyond_the_noise_keeps_the_relay_running():
+    # the plant gain grows as e^(2 t) (8 % a period of 0.04 s): the amplitudes of three periods
+    # spread by ~16 %, beyond the 5 % the noise explains (3 sigma/a = 5 %): no early verdict
+    sigma = 0.002
+    sup = RelaySupervisor(amplitude=0.3, bias=0.0, target=10.0, ceiling=0.3, noise_std=sigma)
+    dec, _, _ = run_loop(sup, hysteresis=3 * sigma, noise=sigma, drift=2.0, t_max=5.0)
+    assert dec is not None and dec.action == "converged"
+    assert dec.periods_after_ramp == sup.max_periods_after_ramp
+    assert "not stationary" in dec.reason

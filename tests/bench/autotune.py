@@ -6,6 +6,7 @@ and the host-side kill latency (offending telemetry sample's arrival -> kill fra
 repeated trips of the host monitor. `--json` prints one JSON object.
 
     python tests/bench/autotune.py [--json] [--scenario gimbal-quad] [--speed 10] [--trips 20]
+                                   [--runs 1]
 """
 
 from __future__ import annotations
@@ -44,12 +45,12 @@ def relay_figures(session: str) -> list[dict]:
     return rows
 
 
-def demo_run(scenario: str, speed: str, log_dir: str) -> tuple[float, dict]:
+def demo_run(scenario: str, speed: str, log_dir: str, seed: int = 0) -> tuple[float, dict]:
     env = dict(os.environ, TETHERLOOP_LOG_DIR=log_dir)
     t0 = time.perf_counter()
     r = subprocess.run([sys.executable, "-m", "agent.cli", "demo", "--json", "--scenario",
-                        scenario, "--speed", speed], capture_output=True, text=True, env=env,
-                       timeout=1800)
+                        scenario, "--speed", speed, "--seed", str(seed)], capture_output=True,
+                       text=True, env=env, timeout=1800)
     wall = time.perf_counter() - t0
     if r.returncode not in (0, 4):
         raise SystemExit(f"demo failed ({r.returncode}):\n{r.stderr[-3000:]}")
@@ -93,21 +94,45 @@ def kill_latency(trips: int) -> list[float]:
     return out
 
 
+def print_run(args, run: dict) -> None:
+    print(f"tetherloop demo ({args.scenario}, clock x{args.speed}, seed {run['seed']}): "
+          f"{run['demo_wall_s']:.1f} s wall, outcome {run['demo_outcome']}")
+    print(f"{'loop':<14}{'stand s':>9}{'ramp adj':>10}{'periods after ramp':>20}{'Tu~ s':>9}"
+          f"  status")
+    for r in run["loops"]:
+        print(f"{r['loop']:<14}{r['stand_s']:>9.2f}{r['ramp_adjustments']:>10}"
+              f"{r['periods_after_ramp']!s:>20}{(r['period_s'] or float('nan')):>9.4f}"
+              f"  {r['status']}")
+
+
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--json", action="store_true")
     ap.add_argument("--scenario", default="gimbal-quad")
     ap.add_argument("--speed", default="10")
     ap.add_argument("--trips", type=int, default=20)
+    ap.add_argument("--runs", type=int, default=1, help="demo runs (seeds 0..runs-1)")
     args = ap.parse_args()
-    with tempfile.TemporaryDirectory() as logs:
-        wall, demo = demo_run(args.scenario, args.speed, logs)
-        loops = relay_figures(demo["session"])
+    runs = []
+    for seed in range(args.runs):
+        with tempfile.TemporaryDirectory() as logs:
+            wall, demo = demo_run(args.scenario, args.speed, logs, seed)
+            loops = relay_figures(demo["session"])
+        status = {lr["loop"]: lr["status"] for lr in demo.get("loops", [])}
+        for r in loops:
+            r["status"] = status.get(r["loop"])
+        runs.append({"seed": seed, "demo_wall_s": round(wall, 2),
+                     "demo_outcome": demo["outcome"], "loops": loops})
+        if not args.json:
+            print_run(args, runs[-1])
     lat = kill_latency(args.trips)
+    periods = [r["periods_after_ramp"] for run in runs for r in run["loops"]]
     result = {
-        "scenario": args.scenario, "speed": args.speed,
-        "demo_wall_s": round(wall, 2), "demo_outcome": demo["outcome"],
-        "loops": loops,
+        "scenario": args.scenario, "speed": args.speed, "runs": runs,
+        "periods_after_ramp": {"n": len(periods), "max": max(periods),
+                               "median": statistics.median(periods),
+                               "at_most_4": sum(p <= 4 for p in periods)},
+        "verified": sum(r["status"] == "verified" for run in runs for r in run["loops"]),
         "kill_latency_ms": {"n": len(lat),
                             "median": round(statistics.median(lat), 3) if lat else None,
                             "max": round(max(lat), 3) if lat else None},
@@ -116,12 +141,10 @@ def main() -> int:
     if args.json:
         print(json.dumps(result, indent=2))
         return 0
-    print(f"tetherloop demo ({args.scenario}, clock x{args.speed}): {wall:.1f} s wall, "
-          f"outcome {demo['outcome']}")
-    print(f"{'loop':<14}{'stand s':>9}{'ramp adj':>10}{'periods after ramp':>20}{'Tu~ s':>9}")
-    for r in loops:
-        print(f"{r['loop']:<14}{r['stand_s']:>9.2f}{r['ramp_adjustments']:>10}"
-              f"{r['periods_after_ramp']!s:>20}{(r['period_s'] or float('nan')):>9.4f}")
+    p = result["periods_after_ramp"]
+    print(f"over {args.runs} run(s): {p['at_most_4']} of {p['n']} loops converged within 4 "
+          f"periods after the ramp (median {p['median']}, max {p['max']}); "
+          f"{result['verified']} of {p['n']} verified")
     k = result["kill_latency_ms"]
     print(f"host-side kill latency over {k['n']} trips: median {k['median']} ms, max {k['max']} ms"
           " (goal: median <= 10 ms)")
