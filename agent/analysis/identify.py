@@ -20,7 +20,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .cycles import CycleStats, detect_cycles
-from .models import Model, fit_models, select_model
+from .models import INTEGRATING_KINDS, MODEL_KINDS, Model, fit_models, select_model
 from .records import RecordError, RelayRecord, validate_record
 from .ultimate import (
     UltimatePoint,
@@ -214,9 +214,12 @@ def identify(record: RelayRecord) -> Identification:
 
     # --- models
     noise_mad = _noise_mad(y)
-    models = fit_models(dt, u, y, per, cyc.amplitude, u_ref=float(record.bias),
-                        noise_std=noise_mad)
-    if record.integrating is not None:  # the host's prior knowledge of the loop's physics
+    # the host's prior knowledge of the loop's physics: only families of that kind are fitted
+    kinds = MODEL_KINDS if record.integrating is None else tuple(
+        k for k in MODEL_KINDS if (k in INTEGRATING_KINDS) == bool(record.integrating))
+    models = fit_models(dt, u, y, per, cyc.amplitude, kinds=kinds, u_ref=float(record.bias),
+                        noise_std=noise_mad, at_rest=record.at_rest)
+    if record.integrating is not None:
         kind_ok = {k: m for k, m in models.items() if m.integrating == record.integrating}
         models = kind_ok or models
     model = select_model(models, len(y), cyc.amplitude, noise_std=noise_mad)

@@ -53,6 +53,11 @@ class RelayRecord:
         Loop sample time of the board.
     sampling_delay_s : float
         Delay added by the board's sampling (see the module docstring); 0 when unknown.
+    at_rest : bool or None
+        Whether the series starts at rest (True: the loop was still before the first sample,
+        with the output at ``bias``), mid-oscillation (False: a window of a running relay), or
+        unknown (None: the model fit decides). A wrong True biases the fitted gain strongly
+        while hardly raising its residual, so the workflow states False for its windows.
     integrating : bool or None
         What the host knows of the loop's physics: True when the measurement integrates the
         loop's output (an angle loop around a rate loop, a height loop around a climb-rate
@@ -70,6 +75,7 @@ class RelayRecord:
     sample_time_s: float
     sampling_delay_s: float = 0.0
     integrating: bool | None = None
+    at_rest: bool | None = None
 
 
 def _finite_scalar(name: str, value: object) -> float:

@@ -124,4 +124,4 @@ def relay_record_from_rows(columns: dict[str, np.ndarray], analysis_input: dict)
                        amplitude=float(ai["amplitude"]), hysteresis=float(ai["hysteresis"]),
                        bias=float(ai["bias"]), sample_time_s=float(ai["sample_time_s"]),
                        sampling_delay_s=float(ai["sampling_delay_s"]),
-                       integrating=ai.get("integrating"))
+                       integrating=ai.get("integrating"), at_rest=ai.get("at_rest"))
