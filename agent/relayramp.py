@@ -29,6 +29,13 @@ stationary cycle varied by 0.6 sigma/a (standard deviation) and its first-harmon
 ``1.5 sigma/a`` (plus two samples of period quantisation) and ``3 sigma/a``. A drift beyond
 that still keeps the relay running (own measurement; the crossing-time jitter sigma/slope is
 common practice, no source).
+Precision: convergence says the limit cycle is steady, not that enough of it has been seen. On a
+noisy loop the identified ultimate gain scatters by about 0.75 (sigma/a) / sqrt(n) over n
+recorded periods (measured: 0.79 % standard deviation over 10 noise draws on a 40-period record
+of the invented tf-integrating plant at sigma/a = 0.069), so the relay keeps running at the
+converged setting until that is below ``precision`` (0.5 %), at most ``max_record_periods``
+periods and ``max_record_s`` seconds; ``periods_after_ramp`` still reports
+when the oscillation converged, ``periods_recorded`` how many periods were analysed.
 """
 
 from __future__ import annotations
@@ -55,6 +62,7 @@ class Decision:
     reason: str = ""
     window: tuple[int, int] | None = None  # sample indices: every whole period after settling
     periods_after_ramp: int = 0
+    periods_recorded: int = 0  # whole periods in the window
     amplitude_seen: float = float("nan")
     period_s: float = float("nan")
 
@@ -74,6 +82,9 @@ class RelaySupervisor:
     bias_tol: float = 0.1  # re-centre when |mean u - bias| > bias_tol * amplitude
     max_bias_moves: int = 4  # after this many re-centrings the bias is left alone
     noise_std: float = 0.0  # measurement noise (standard deviation) from the hold
+    precision: float = 0.005  # wanted relative scatter of the ultimate gain (noisy loops)
+    max_record_periods: int = 60
+    max_record_s: float = 60.0
     no_switch_s: float = 5.0  # fail when the relay has not switched for this long (or 3x the
     # longest half-period seen, whichever is longer)
     _adjust_index: int = 0  # sample index of the last change
@@ -136,14 +147,39 @@ class RelaySupervisor:
                     note = "" if stable else (
                         f"not stationary after {j + 1} periods (period spread {p_spread:.1%}, "
                         f"amplitude spread {a_spread:.1%}); analysing the last ones anyway")
+                    # every whole period since the settling one goes to the analysis; on a
+                    # noisy loop more of them are recorded first (see Precision above)
+                    # (the first `need` periods, or those within the time budget, so that
+                    # the window does not depend on when the caller polls)
+                    need = self.periods_for_precision(float(a.mean()))
+                    have = len(periods)
+                    spent = t_s[edges[1:]] - t_s[edges[0]]
+                    in_budget = int(np.count_nonzero(spent <= self.max_record_s))
+                    last = j + 1
+                    if stable:
+                        if have < need and in_budget == have:
+                            return Decision("wait", self.amplitude, self.bias, "recording",
+                                            periods_after_ramp=j + 1 + self.settle_periods,
+                                            periods_recorded=have,
+                                            amplitude_seen=float(a.mean()),
+                                            period_s=float(p.mean()))
+                        last = max(min(need, in_budget), j + 1)
                     return Decision("converged", self.amplitude, self.bias, note,
-                                    # every whole period since the settling one: more
-                                    # periods average more noise out
-                                    window=(int(edges[0]), int(edges[j + 1])),
+                                    window=(int(edges[0]), int(edges[last])),
                                     periods_after_ramp=j + 1 + self.settle_periods,
+                                    periods_recorded=last,
                                     amplitude_seen=float(a.mean()), period_s=float(p.mean()))
         return Decision("wait", self.amplitude, self.bias, amplitude_seen=float(amps[-1]),
                         period_s=float(periods[-1]))
+
+    def periods_for_precision(self, amplitude: float) -> int:
+        """Whole periods to record at this oscillation amplitude: enough for the ultimate
+        gain's scatter 0.75 (sigma/a) / sqrt(n) to reach ``precision``; at least
+        ``stable_periods``, at most ``max_record_periods``."""
+        if self.noise_std <= 0 or amplitude <= 0:
+            return self.stable_periods
+        n = int(np.ceil((0.75 * self.noise_std / amplitude / self.precision) ** 2))
+        return int(min(max(n, self.stable_periods), self.max_record_periods))
 
     def tolerances(self, amplitude: float, period_s: float = 0.0,
                    dt: float = 0.0) -> tuple[float, float]:

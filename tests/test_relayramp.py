@@ -132,3 +132,46 @@ def test_drift_beyond_the_noise_keeps_the_relay_running():
     assert dec is not None and dec.action == "converged"
     assert dec.periods_after_ramp == sup.max_periods_after_ramp
     assert "not stationary" in dec.reason
+
+
+def test_noisy_loop_records_more_periods_for_precision_after_converging():
+    # sigma/a = 0.08: the ultimate gain scatters by about 0.75 (sigma/a)/sqrt(n) (own measurement,
+    # agent/relayramp.py), so 0.5 % needs 144 periods; the cap of 60 applies. Convergence itself
+    # is still reported after at most four periods.
+    sigma = 0.008
+    sup = RelaySupervisor(amplitude=0.3, bias=0.0, target=0.1, ceiling=0.3, noise_std=sigma)
+    dec, t, _ = run_loop(sup, hysteresis=3 * sigma, noise=sigma, seed=1, t_max=5.0)
+    assert dec is not None and dec.action == "converged" and dec.reason == ""
+    assert dec.periods_after_ramp <= 4
+    assert dec.periods_recorded == sup.max_record_periods == 60  # exactly: the first 60
+    a, b = dec.window
+    assert (t[b] - t[a]) / dec.period_s == pytest.approx(60, abs=1)
+
+
+def test_precision_recording_stops_at_its_time_budget():
+    sigma = 0.008
+    sup = RelaySupervisor(amplitude=0.3, bias=0.0, target=0.1, ceiling=0.3, noise_std=sigma,
+                          max_record_s=0.5)
+    dec, t, _ = run_loop(sup, hysteresis=3 * sigma, noise=sigma, seed=1)
+    a, b = dec.window
+    assert dec.action == "converged" and 0.5 - dec.period_s <= t[b] - t[a] <= 0.5
+    assert dec.periods_recorded < 20
+
+
+def test_quiet_loop_needs_no_precision_periods():
+    sup = RelaySupervisor(amplitude=0.02, bias=0.0, target=0.1, ceiling=1.0, noise_std=1e-5)
+    assert sup.periods_for_precision(0.1) == sup.stable_periods
+    dec, _, _ = run_loop(sup)
+    assert dec.periods_recorded == sup.stable_periods
+
+
+def test_noisy_verdict_does_not_depend_on_poll_rate():
+    sigma = 0.008
+    outs = set()
+    for poll in (5, 61, 400):
+        sup = RelaySupervisor(amplitude=0.3, bias=0.0, target=0.1, ceiling=0.3, noise_std=sigma)
+        dec, _, _ = run_loop(sup, hysteresis=3 * sigma, noise=sigma, seed=2, poll_every=poll)
+        # (the window's start moves with the poll that made the last adjustment: the device
+        # applies an adjustment when the host sends it)
+        outs.add((dec.action, dec.periods_after_ramp, dec.periods_recorded))
+    assert len(outs) == 1, outs
