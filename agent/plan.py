@@ -7,7 +7,10 @@ A plan file looks like this (every key optional except the loops)::
     rule = "recommended"      # or a rule name, see `tetherloop tune --help`
     ms_target = 1.4           # robustness target of the constrained design
     relay_target = 0.3        # relay oscillation amplitude as a fraction of the kill threshold
-    verify = true             # step test after applying, roll back if it fails
+    verify = true             # step test after applying; a miss tries the most conservative
+                              # candidate once (rule "recommended" only), then rolls back
+    verify_overshoot_margin = 0.15  # measured overshoot may exceed the predicted by this
+    verify_time_factor = 2.5  # measured rise time within [1/f, f] x the predicted
     apply = true              # write the chosen gains to the board
     persist = false           # store them in the board's non-volatile memory at the end
 
@@ -130,6 +133,10 @@ def _choice(table: dict, key: str, where: str, default: str, choices) -> str:
     return value
 
 
+_STAND_KEYS = ("controller", "rule", "ms_target", "relay_target", "verify",
+               "verify_overshoot_margin", "verify_time_factor", "apply", "persist")
+
+
 def plan_from_dict(data: dict, source: str = "plan") -> Plan:
     known_top = {"stand", "limits", "loop"}
     extra = set(data) - known_top
@@ -138,6 +145,10 @@ def plan_from_dict(data: dict, source: str = "plan") -> Plan:
                         "[stand], [limits] and [[loop]]")
     stand = data.get("stand", {})
     lim = data.get("limits", {})
+    for key in stand:
+        if key not in _STAND_KEYS:
+            raise PlanError(f"{source} [stand]: unknown key {key!r}; expected "
+                            f"{', '.join(_STAND_KEYS)}")
     for key in lim:
         if key not in _LIMIT_RANGES:
             raise PlanError(f"{source} [limits]: unknown key {key!r}; expected "
@@ -183,6 +194,10 @@ def plan_from_dict(data: dict, source: str = "plan") -> Plan:
                 max_experiment_s=values["max_experiment_s"],
                 relay_target=_num(stand, "relay_target", f"{source} [stand]", 0.3, 0.05, 0.8),
                 verify=bool(stand.get("verify", True)), apply=bool(stand.get("apply", True)),
+                verify_overshoot_margin=_num(stand, "verify_overshoot_margin",
+                                             f"{source} [stand]", 0.15, 0.0, 1.0),
+                verify_time_factor=_num(stand, "verify_time_factor", f"{source} [stand]", 2.5,
+                                        1.0, 10.0),
                 persist=bool(stand.get("persist", False)))
 
 

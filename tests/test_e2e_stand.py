@@ -67,11 +67,11 @@ def test_tune_generic_plant_recovers_ultimate_point(tmp_path, mock_pty, scenario
     num, den, delay = sc.ground_truth("roll", loop)
     extra = sc.sampling_delay_s if out["ultimate_basis"] == "loop" else 0.0
     ku, tu = exact_ultimate(num, den, delay + extra)
-    # 2 % on the noiseless plants; tf-integrating carries measurement noise of about 6 % of the
-    # oscillation, where this run's record gives up to 3.5 % (open item on issue 6, not hidden)
-    tol = 0.05 if scenario == "tf-integrating" else 0.02
-    assert out["ultimate_gain"] == pytest.approx(ku, rel=tol)
-    assert out["ultimate_period_s"] == pytest.approx(tu, rel=tol)
+    # 2 % on every plant, tf-integrating included (measurement noise about 7 % of its
+    # oscillation: the relay records ~60 periods for that, see agent/relayramp.py "Precision")
+    assert out["ultimate_gain"] == pytest.approx(ku, rel=0.02)
+    assert out["ultimate_period_s"] == pytest.approx(tu, rel=0.02)
+    assert out["relay"]["periods_after_ramp"] <= 5
     assert out["model"]["kind"] and out["model"]["parameters"]
     assert {"rule", "kp", "ki", "kd", "ms", "gm", "pm_deg"} <= set(out["candidates"][0])
     assert out["recommended"] in [c["rule"] for c in out["candidates"]]
@@ -198,3 +198,25 @@ def test_link_dropped_mid_relay(tmp_path, mock_pty):
     assert kills[-1].reason == KillReason.WATCHDOG
     assert "Traceback" not in err
     assert "KILL" in out + err
+
+
+def test_missed_step_tries_the_conservative_candidate_then_rolls_back(tmp_path, mock_pty):
+    # A plan that no step can satisfy (rise time exactly as predicted, no overshoot margin):
+    # the recommended gains miss, the lowest-Ms candidate gets its own step test, misses too,
+    # and the board ends with the gains it had before; both steps are in the log.
+    h = mock_pty("tf-fopdt", speed=20.0)
+    before = {k: v for k, v in h.firmware.settings.values.items() if k.startswith("roll.rate.")}
+    plan = tmp_path / "strict.toml"
+    plan.write_text('[stand]\nverify_time_factor = 1.0\nverify_overshoot_margin = 0.0\n\n'
+                    '[[loop]]\naxis = "roll"\nloop = "rate"\n')
+    r = run_cli("autotune", "--port", h.port, "--plan", str(plan), "--json", "--confirm-safe",
+                log_dir=tmp_path / "logs")
+    assert r.returncode == 4, r.stdout[-2000:] + r.stderr[-2000:]  # 4: rolled back
+    lr = json.loads(r.stdout)["loops"][0]
+    assert lr["status"] == "rolled_back"
+    assert lr["first_try"]["rule"] == lr["recommended"] != lr["chosen"]
+    assert lr["first_try"]["problems"] and lr["verification"]["problems"]
+    for name, value in before.items():
+        assert h.firmware.settings.values[name] == pytest.approx(value, rel=1e-6), name
+    rec = read_session(json.loads(r.stdout)["session"])
+    assert {"roll-rate-verify", "roll-rate-verify-fallback"} <= set(rec.experiments)

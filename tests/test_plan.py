@@ -61,6 +61,9 @@ loop = "rate"
     ('[stand]\n', "no [[loop]] entries"),
     ('[[loop]]\naxis = "roll"\nloop = "rate"\n[[loop]]\naxis = "roll"\nloop = "rate"\n', "twice"),
     ('this is = = not toml', "not valid TOML"),
+    ('[stand]\nverfy = false\n[[loop]]\naxis = "roll"\nloop = "rate"\n', "unknown key 'verfy'"),
+    ('[stand]\nverify_time_factor = 0.5\n[[loop]]\naxis = "roll"\nloop = "rate"\n',
+     "verify_time_factor"),
 ])
 def test_bad_plans_give_clear_errors(tmp_path, text, needle):
     with pytest.raises(PlanError) as err:
