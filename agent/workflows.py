@@ -773,14 +773,15 @@ FALLBACK_MS = 1.2  # robustness target of the detuned design tried after a misse
 
 def _fallback_candidate(res: LoopResult, analysis_input: dict):
     """The most robust alternative to the chosen gains: among the other rules' candidates
-    and the constrained design redone for Ms = FALLBACK_MS, the one with the lowest Ms below
-    the chosen one's and a finite predicted step; None when there is none."""
+    and the constrained design redone for Ms = FALLBACK_MS (rule name ``fallback_ms1.2``), the
+    one with the lowest Ms below the chosen one's and a finite predicted step; None when there
+    is none."""
     from .logbook.records import tune_kwargs
     pool = [c for c in res.tuning.candidates if c is not res.chosen]
     try:
         strict = analysis.tune(res.identification,
                                **{**tune_kwargs(analysis_input), "ms_target": FALLBACK_MS})
-        pool += [replace(c, rule=f"{c.rule}_ms{FALLBACK_MS:g}") for c in strict.candidates
+        pool += [replace(c, rule=f"fallback_ms{FALLBACK_MS:g}") for c in strict.candidates
                  if c.rule == "ms_constrained"]
     except ValueError:
         pass
