@@ -379,3 +379,22 @@ def test_the_ultimate_point_helper_on_a_textbook_plant():
     ku, tu = plant_ultimate_point([1.0], [1.0, 3.0, 3.0, 1.0], 0.0)
     assert ku == pytest.approx(8.0, rel=1e-3)
     assert tu == pytest.approx(2 * np.pi / np.sqrt(3.0), rel=1e-3)
+
+
+def test_results_list_the_fallback_candidate_that_was_applied():
+    # After a missed step the workflow may apply a candidate designed afterwards (the robust
+    # fallback); the results table must show it and mark it as the chosen one.
+    from dataclasses import replace
+
+    from agent.analysis import identify, simulate_relay, tune
+    from agent.ui.panes.results import ResultsPane
+    from agent.workflows import LoopResult
+
+    rec = simulate_relay([1], [1, 3, 3, 1], 0.0, 1.0, 0.0, 0.0, 0.01, 40.0)
+    tuning = tune(identify(rec), controller="pid")
+    lr = LoopResult("roll.rate", "roll", "rate", "pid", tuning=tuning)
+    lr.chosen = replace(tuning.candidates[-1], rule="fallback_ms1.2")
+    rows = ResultsPane._rows(lr)
+    assert rows[-1] is lr.chosen and len(rows) == len(tuning.candidates) + 1
+    lr.chosen = tuning.candidates[0]
+    assert ResultsPane._rows(lr) == list(tuning.candidates)

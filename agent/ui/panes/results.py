@@ -57,8 +57,18 @@ class ResultsPane(Vertical):
             return None
         table = self.query_one("#candidates", DataTable)
         row = table.cursor_row
-        cands = list(lr.tuning.candidates)
+        cands = self._rows(lr)
         return cands[row] if 0 <= row < len(cands) else None
+
+    @staticmethod
+    def _rows(lr) -> list:
+        """The candidates shown: the tuning's, plus the chosen one when it came from elsewhere
+        (the robust fallback tried after a missed step)."""
+        cands = list(lr.tuning.candidates)
+        if lr.chosen is not None and all(c is not lr.chosen for c in cands) \
+                and lr.chosen.rule not in {c.rule for c in cands}:
+            cands.append(lr.chosen)
+        return cands
 
     def on_select_changed(self, event: Select.Changed) -> None:
         if event.select.id == "results-loop":
@@ -110,9 +120,13 @@ class ResultsPane(Vertical):
         relay = lr.relay or {}
         if relay:
             rows += [("relay amp", fmt(relay.get("final_amplitude"), 3)),
-                     ("periods", str(relay.get("periods_after_ramp", "-")))]
+                     ("periods", f"{relay.get('periods_after_ramp', '-')} to converge, "
+                                 f"{relay.get('periods_recorded', '-')} analysed")]
         if lr.chosen is not None:
             rows.append(("chosen", lr.chosen.rule))
+        if lr.first_try:
+            rows.append(("first try", f"{lr.first_try['rule']} missed its step: "
+                                      + "; ".join(lr.first_try.get("problems") or [])))
         ver = lr.verification
         if ver:
             meas = ver.get("measured") or {}
@@ -128,7 +142,7 @@ class ResultsPane(Vertical):
         if lr.tuning is not None:
             rec = lr.tuning.recommended
             chosen = lr.chosen.rule if lr.chosen is not None else None
-            for c in lr.tuning.candidates:
+            for c in self._rows(lr):
                 tag = ("*" if c.rule == chosen else " ") + ("R" if c.rule == rec else " ")
                 p = c.predicted
                 table.add_row(f"{tag}{c.rule}", fmt(c.kp, 3), fmt(c.ki, 3), fmt(c.kd, 3),
@@ -137,7 +151,7 @@ class ResultsPane(Vertical):
             if keep_row is not None and 0 <= keep_row < table.row_count:
                 table.move_cursor(row=keep_row)
             elif chosen is not None:
-                names = [c.rule for c in lr.tuning.candidates]
+                names = [c.rule for c in self._rows(lr)]
                 if chosen in names:
                     table.move_cursor(row=names.index(chosen))
         self._plot_candidate()
