@@ -16,7 +16,7 @@ import pytest
 
 from agent.ui.app import ConsoleOptions, StandConsole
 from agent.ui.caution import CautionScreen
-from protocol.messages import DeviceState
+from protocol.messages import DeviceState, ExperimentKind
 
 SPEED = "5"
 
@@ -223,9 +223,13 @@ def test_kill_key_during_the_relay(tmp_path):
             await plan_one_loop(pilot, verify=False)
             await start_and_confirm(pilot)
             run_pane = app.query_one("#run")
-            await wait_for(pilot, lambda: run_pane.stage in ("ramp", "relay"),
+            fw = app.stand.mock.firmware
+            # the "ramp" stage is announced just before the relay is started on the board:
+            # wait until the board runs it
+            await wait_for(pilot, lambda: run_pane.stage in ("ramp", "relay")
+                           and fw.exp is not None and fw.exp.kind == ExperimentKind.RELAY
+                           and app.stand.state == DeviceState.RUNNING,
                            "the relay experiment")
-            assert app.stand.state == DeviceState.RUNNING
             await pilot.press("ctrl+k")
             await wait_for(pilot, lambda: app.stand.mock.firmware.state == DeviceState.KILLED,
                            "the simulated board to report KILLED")
