@@ -436,6 +436,12 @@ class Firmware:
         v = self.settings.values
         pid = lv.pid
         pre = lv.prefix
+        # bumpless parameter change: the integrator absorbs the jump of the feed-forward and
+        # proportional terms (with setpoint weight b = 0 on a height loop, kp * y alone is a
+        # large offset), so writing gains to a running loop does not kick the output
+        # (Astrom & Hagglund 1995, PID Controllers, bumpless parameter changes; value from
+        # memory)
+        before = pid.ff + pid.kp * (pid.b * lv.r - lv.y)
         pid.kp = v[pre + "kp"]
         pid.ki = v[pre + "ki"]
         pid.kd = v[pre + "kd"]
@@ -447,6 +453,10 @@ class Firmware:
         pid.aw_tt = v[pre + "aw_tt"]
         pid.ff = v[pre + "ff"]
         pid.configure()
+        if pid.running:  # the loop has run: keep its output continuous
+            i = pid.i + before - (pid.ff + pid.kp * (pid.b * lv.r - lv.y))
+            il = pid.i_limit
+            pid.i = min(max(i, -il), il) if il > 0 else i
 
     def _apply_setting(self, name: str) -> None:
         parts = name.split(".")

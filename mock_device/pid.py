@@ -52,6 +52,11 @@ class Pid:
         self.lo = max(lo, self.act_lo)
         self.hi = min(hi, self.act_hi)
 
+    @property
+    def running(self) -> bool:
+        """True once the controller has run since its last reset."""
+        return not self._fresh
+
     def reset(self, integral: float = 0.0) -> None:
         """Clear the state (bumpless start: the integrator may be preloaded)."""
         self.i = integral

@@ -660,3 +660,31 @@ def test_a_sensor_still_stuck_after_a_clear_trips_again():
     w.request(M.KillClear())
     w.tick(2)
     assert fw.state == S.KILLED  # still stuck: the board refuses to stay cleared
+
+
+@pytest.mark.parametrize("name, value", [("heave.heave.b", 0.0), ("heave.heave.kp", 1.5),
+                                         ("heave.rate.ff", 0.3)])
+def test_writing_gains_to_a_running_loop_is_bumpless(name, value):
+    # Bumpless parameter change (Astrom & Hagglund 1995, PID Controllers; value from memory):
+    # the integrator absorbs the step of the feed-forward and proportional terms. Without it,
+    # setpoint weight b = 0 on the height loop jumps the output by kp * height at once (seen as
+    # a kill on the heave stand when tuned gains were written).
+    fw = Firmware("heave-rail", seed=1)
+    fw.set_setting("heave.heave.ki", 0.2)
+    fw.set_setting("heave.heave.i_limit", 2.0)
+    fw.set_setting("heave.rate.i_limit", 1.0)
+    fw.arm_now()
+    # lift the frame 0.5 m off the bottom stop with a step on the height loop; afterwards the
+    # board holds it there (with b = 0 the jump would be kp * 0.5 m)
+    fw.start_experiment(M.ExperimentStart(
+        tag=3, kind=M.ExperimentKind.STEP, axis=M.Axis.HEAVE, loop=M.Loop.HEAVE,
+        amplitude=0.5, setpoint=0.0, step_at_s=0.1, duration_s=6.0))
+    for _ in range(8000):  # the step, then 2 s of hold
+        fw.tick(0.0)
+    assert fw.state == S.ARMED and fw.level_signals("heave", "heave")[1] > 0.4
+    level = name.split(".")[1]
+    _, _, u_before = fw.level_signals("heave", level)
+    fw.set_setting(name, value)
+    fw.tick(0.0)
+    _, _, u_after = fw.level_signals("heave", level)
+    assert abs(u_after - u_before) < 0.02, (u_before, u_after)
