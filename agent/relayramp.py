@@ -87,7 +87,8 @@ class RelaySupervisor:
     max_record_s: float = 60.0
     no_switch_s: float = 5.0  # fail when the relay has not switched for this long (or 3x the
     # longest half-period seen, whichever is longer)
-    _adjust_index: int = 0  # sample index of the last change
+    _adjust_index: int = 0  # sample index of the last change (once the board applied it)
+    _old_levels: tuple | None = None  # relay output levels before a change not yet seen applied
     adjustments: int = 0
     bias_moves: int = 0
     _bias_points: list = field(default_factory=list)
@@ -96,6 +97,20 @@ class RelaySupervisor:
         n = len(t_s)
         if n < 3:
             return Decision("wait", self.amplitude, self.bias)
+        if self._old_levels is not None:
+            # the board applies a change when the request arrives, after the samples the
+            # decision saw: periods count from the first sample at the new output levels
+            lo, hi = self._old_levels
+            tol = max(1e-3, 0.01 * self.amplitude)
+            uu = u[self._adjust_index:]
+            new = np.flatnonzero((np.abs(uu - lo) > tol) & (np.abs(uu - hi) > tol))
+            if len(new):
+                self._adjust_index += int(new[0])
+                self._old_levels = None
+            elif t_s[-1] - t_s[self._adjust_index] > 1.0:
+                self._old_levels = None  # not recognisable (a limited output): count from the request
+            else:
+                return Decision("wait", self.amplitude, self.bias)
         start = self._adjust_index
         rel = relay[start:]
         rising = np.flatnonzero((rel[1:] > 0) & (rel[:-1] <= 0)) + 1 + start
@@ -221,6 +236,7 @@ class RelaySupervisor:
             self._bias_points.append((self.bias, r))
             new_bias = self.bias + step
             self.bias_moves += 1
+        self._old_levels = (self.bias - self.amplitude, self.bias + self.amplitude)
         self.amplitude, self.bias = new_amp, new_bias
         self._adjust_index = n - 1
         self.adjustments += 1

@@ -9,11 +9,14 @@ from agent.relayramp import RelaySupervisor
 
 
 def run_loop(sup, K=2.0, T=0.05, L=0.01, load=0.0, integrating=False, dt=0.001, t_max=5.0,
-             poll_every=37, hysteresis=0.0, noise=0.0, seed=0, drift=0.0):
+             poll_every=37, hysteresis=0.0, noise=0.0, seed=0, drift=0.0, apply_lag=0,
+             record=None):
     """Relay around setpoint 0 on K e^{-Ls}/(Ts+1) (or K e^{-Ls}/s) with an input load, exact
     zero-order-hold update per tick; the supervisor is polled every `poll_every` ticks.
     `noise`: white measurement noise (standard deviation) seen by the relay and recorded;
-    `drift`: the plant gain grows as e^(drift t) (a loop that is not stationary)."""
+    `drift`: the plant gain grows as e^(drift t) (a loop that is not stationary);
+    `apply_lag`: ticks between the supervisor's decision and the board applying it (the link);
+    `record`: a list that receives the applied relay output of every tick."""
     rng = np.random.default_rng(seed)
     n = int(t_max / dt)
     d = int(round(L / dt))
@@ -22,21 +25,29 @@ def run_loop(sup, K=2.0, T=0.05, L=0.01, load=0.0, integrating=False, dt=0.001, 
     hist_u = [sup.bias] * (d + 1)
     t, y, u, r = [], [], [], []
     relay = 1
+    applied = (sup.amplitude, sup.bias)
+    pending = []  # (tick, amplitude, bias)
     for k in range(n):
+        while pending and pending[0][0] <= k:
+            applied = pending.pop(0)[1:]
         ym = x + noise * rng.standard_normal()
         e = -ym
         if e > hysteresis:
             relay = 1
         elif e < -hysteresis:
             relay = -1
-        uk = sup.bias + relay * sup.amplitude
+        uk = applied[1] + relay * applied[0]
         t.append(k * dt); y.append(ym); u.append(uk); r.append(relay)
         hist_u.append(uk)
         ud = hist_u[-1 - d] + load
         kk = K * math.exp(drift * k * dt)
         x = x + kk * ud * dt if integrating else a * x + (1 - a) * kk * ud
+        if record is not None:
+            record.append(uk)
         if k % poll_every == poll_every - 1:
             dec = sup.decide(np.array(t), np.array(y), np.array(u), np.array(r))
+            if (dec.amplitude, dec.bias) != (pending[-1][1:] if pending else applied):
+                pending.append((k + 1 + apply_lag, dec.amplitude, dec.bias))
             if dec.action in ("converged", "fail"):
                 return dec, np.array(t), np.array(y)
     return None, np.array(t), np.array(y)
@@ -175,3 +186,15 @@ def test_noisy_verdict_does_not_depend_on_poll_rate():
         # applies an adjustment when the host sends it)
         outs.add((dec.action, dec.periods_after_ramp, dec.periods_recorded))
     assert len(outs) == 1, outs
+
+
+def test_periods_count_from_when_the_board_applied_the_change():
+    # the request reaches the board 60 ticks (more than a period) after the decision: the
+    # analysed window must hold only periods at the final amplitude, never a mix
+    sup = RelaySupervisor(amplitude=0.02, bias=0.0, target=0.1, ceiling=1.0)
+    out = []
+    dec, t, _ = run_loop(sup, apply_lag=60, record=out)
+    assert dec is not None and dec.action == "converged" and sup.adjustments >= 1
+    a, b = dec.window
+    levels = np.unique(np.round(np.abs(np.array(out[a:b + 1])), 9))
+    assert levels == pytest.approx([dec.amplitude]), levels
