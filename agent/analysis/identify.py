@@ -219,9 +219,6 @@ def identify(record: RelayRecord) -> Identification:
         k for k in MODEL_KINDS if (k in INTEGRATING_KINDS) == bool(record.integrating))
     models = fit_models(dt, u, y, per, cyc.amplitude, kinds=kinds, u_ref=float(record.bias),
                         noise_std=noise_mad, at_rest=record.at_rest)
-    if record.integrating is not None:
-        kind_ok = {k: m for k, m in models.items() if m.integrating == record.integrating}
-        models = kind_ok or models
     model = select_model(models, len(y), cyc.amplitude, noise_std=noise_mad)
     ts_half = 0.5 * dt
     extra = max(float(record.sampling_delay_s) - ts_half, 0.0)
