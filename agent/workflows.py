@@ -87,6 +87,15 @@ class LoopResult:
     bandwidth_rad_s: float = float("nan")
     first_try: dict | None = None  # the recommended gains' failed step, when a fallback ran
 
+    def all_candidates(self) -> list:
+        """The tuning's candidates, plus the chosen one when it came from elsewhere (the robust
+        fallback tried after a missed step), so that ``chosen`` always names one of them."""
+        cands = list(self.tuning.candidates) if self.tuning is not None else []
+        if self.chosen is not None and all(c is not self.chosen for c in cands) \
+                and self.chosen.rule not in {c.rule for c in cands}:
+            cands.append(self.chosen)
+        return cands
+
     def to_dict(self, session_path: str | None = None) -> dict:
         ident = self.identification
         d: dict[str, Any] = {"loop": self.key, "axis": self.axis, "level": self.loop,
@@ -108,7 +117,7 @@ class LoopResult:
             d["candidates"] = [{"rule": c.rule, "kp": _f(c.kp), "ki": _f(c.ki), "kd": _f(c.kd),
                                 "tf_s": _f(c.tf_s), "b": _f(c.b), "ms": _f(c.ms),
                                 "gm": _f(c.gm), "pm_deg": _f(c.pm_deg)}
-                               for c in self.tuning.candidates]
+                               for c in self.all_candidates()]
             d["recommended"] = self.tuning.recommended
         if self.chosen is not None:
             d["chosen"] = self.chosen.rule

@@ -400,5 +400,10 @@ def test_results_list_the_fallback_candidate_that_was_applied():
     lr.chosen = replace(tuning.candidates[-1], rule="fallback_ms1.2")
     rows = ResultsPane._rows(lr)
     assert rows[-1] is lr.chosen and len(rows) == len(tuning.candidates) + 1
+    # the JSON record (autotune --json) names a chosen rule that is among its candidates
+    d = lr.to_dict()
+    assert d["chosen"] == "fallback_ms1.2"
+    assert [c["rule"] for c in d["candidates"]][-1] == "fallback_ms1.2"
+    assert d["candidates"][-1]["kp"] == pytest.approx(lr.chosen.kp)
     lr.chosen = tuning.candidates[0]
     assert ResultsPane._rows(lr) == list(tuning.candidates)

@@ -64,11 +64,7 @@ class ResultsPane(Vertical):
     def _rows(lr) -> list:
         """The candidates shown: the tuning's, plus the chosen one when it came from elsewhere
         (the robust fallback tried after a missed step)."""
-        cands = list(lr.tuning.candidates)
-        if lr.chosen is not None and all(c is not lr.chosen for c in cands) \
-                and lr.chosen.rule not in {c.rule for c in cands}:
-            cands.append(lr.chosen)
-        return cands
+        return lr.all_candidates()
 
     def on_select_changed(self, event: Select.Changed) -> None:
         if event.select.id == "results-loop":
