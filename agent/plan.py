@@ -11,6 +11,9 @@ A plan file looks like this (every key optional except the loops)::
                               # candidate once (rule "recommended" only), then rolls back
     verify_overshoot_margin = 0.15  # measured overshoot may exceed the predicted by this
     verify_time_factor = 2.5  # measured rise time within [1/f, f] x the predicted
+    output_noise_fraction = 0.1  # output deviation the measurement noise may cause, as a
+                              # fraction of the loop's output limit (bounds kp and the
+                              # derivative filter of every design)
     apply = true              # write the chosen gains to the board
     persist = false           # store them in the board's non-volatile memory at the end
 
@@ -93,6 +96,7 @@ class Plan:
     persist: bool = False
     verify_overshoot_margin: float = 0.15  # measured overshoot may exceed predicted by this
     verify_time_factor: float = 2.5  # measured rise time within [1/f, f] x predicted
+    output_noise_fraction: float = 0.1  # noise-caused output deviation / output limit
 
     def as_dict(self) -> dict:
         d = asdict(self)
@@ -134,7 +138,8 @@ def _choice(table: dict, key: str, where: str, default: str, choices) -> str:
 
 
 _STAND_KEYS = ("controller", "rule", "ms_target", "relay_target", "verify",
-               "verify_overshoot_margin", "verify_time_factor", "apply", "persist")
+               "verify_overshoot_margin", "verify_time_factor", "output_noise_fraction",
+               "apply", "persist")
 
 
 def plan_from_dict(data: dict, source: str = "plan") -> Plan:
@@ -198,6 +203,8 @@ def plan_from_dict(data: dict, source: str = "plan") -> Plan:
                                              f"{source} [stand]", 0.15, 0.0, 1.0),
                 verify_time_factor=_num(stand, "verify_time_factor", f"{source} [stand]", 2.5,
                                         1.0, 10.0),
+                output_noise_fraction=_num(stand, "output_noise_fraction", f"{source} [stand]",
+                                           0.1, 0.005, 1.0),
                 persist=bool(stand.get("persist", False)))
 
 

@@ -116,7 +116,8 @@ class LoopResult:
         if self.tuning is not None:
             d["candidates"] = [{"rule": c.rule, "kp": _f(c.kp), "ki": _f(c.ki), "kd": _f(c.kd),
                                 "tf_s": _f(c.tf_s), "b": _f(c.b), "ms": _f(c.ms),
-                                "gm": _f(c.gm), "pm_deg": _f(c.pm_deg)}
+                                "gm": _f(c.gm), "pm_deg": _f(c.pm_deg),
+                                "output_noise": _f(c.output_noise)}
                                for c in self.all_candidates()]
             d["recommended"] = self.tuning.recommended
         if self.chosen is not None:
@@ -465,7 +466,10 @@ def relay_experiment(stand: Stand, lp: LoopPlan, plan: Plan, *, trim: float, hys
                       "integrating": True if lp.loop in ("angle", "heave") else None,
                       # the window starts at a rising edge of the running relay, never at rest
                       "at_rest": False,
-                      "output_limit": stand.session.values.get(f"{lp.axis}.{lp.loop}.out_limit")}
+                      "output_limit": stand.session.values.get(f"{lp.axis}.{lp.loop}.out_limit"),
+                      # the output deviation the measurement noise may cause (bounds kp and
+                      # the derivative filter; see agent/analysis/tuning.py)
+                      "max_output_noise": plan.output_noise_fraction * out_limit}
     summary = {"periods_after_ramp": decision.periods_after_ramp,
                "periods_recorded": decision.periods_recorded,
                "amplitude_seen": decision.amplitude_seen, "period_s": decision.period_s,

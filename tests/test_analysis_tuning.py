@@ -244,3 +244,83 @@ def test_recommended_pi_is_robust_on_integrator_plus_lags():
     _, _, sm, _, _, _ = control.stability_margins(loop)
     assert 1.0 / sm <= 1.5
     assert np.all(np.real(control.poles(control.feedback(loop, 1))) < 0)
+
+
+# ------------------------------------------------------------------ measurement noise
+
+
+@pytest.mark.parametrize("kp, kd, tf_s", [(2.0, 0.0, 0.0), (1.2, 0.0165, 0.00134),
+                                          (17.5, 0.30, 0.0017), (5.0, 0.3, 0.064)])
+def test_noise_gain_is_the_h2_norm_of_the_boards_pd_terms(kp, kd, tf_s):
+    # outside reference: scipy.signal.dimpulse of the same difference equation (the controller
+    # polynomials with ki = 0), H2 norm = sqrt(sum of squared impulse-response samples); and
+    # white noise through scipy.signal.lfilter
+    from scipy import signal
+
+    from agent.analysis.controller import discrete_polys, noise_gain
+    ts = 0.001
+    dc, ny, _ = discrete_polys(kp, 0.0, kd, tf_s, 1.0, ts)
+    _, (h,) = signal.dimpulse((ny, dc, ts), n=20000)
+    assert noise_gain(kp, kd, tf_s, ts) == pytest.approx(np.sqrt(np.sum(h ** 2)), rel=1e-6)
+    n = np.random.default_rng(1).normal(0.0, 0.01, 400_000)
+    u = signal.lfilter(ny, dc, n)
+    assert np.std(u[1000:]) == pytest.approx(0.01 * noise_gain(kp, kd, tf_s, ts), rel=0.01)
+
+
+def test_the_mock_boards_pid_turns_noise_into_the_predicted_output_deviation():
+    # the board's own discrete controller (mock_device.pid) against the formula
+    from agent.analysis.controller import noise_gain
+    from mock_device.pid import Pid
+    p = Pid(0.001)
+    p.kp, p.kd, p.tf = 4.3, 0.09, 0.014
+    p.configure()
+    n = np.random.default_rng(2).normal(0.0, 0.01, 100_000)
+    u = np.array([p.update(0.0, float(y)) for y in n])
+    assert np.std(u[1000:]) == pytest.approx(0.01 * noise_gain(4.3, 0.09, 0.014, 0.001),
+                                             rel=0.02)
+
+
+def test_filter_for_noise_meets_the_bound_exactly_or_says_it_cannot():
+    from agent.analysis.controller import filter_for_noise, noise_gain
+    tf = filter_for_noise(5.0, 0.3, 0.001, 9.6)
+    assert tf > 0.001 and noise_gain(5.0, 0.3, tf, 0.001) == pytest.approx(9.6, rel=1e-5)
+    assert filter_for_noise(1.0, 0.001, 0.001, 9.6) == 0.0  # quiet enough unfiltered
+    assert filter_for_noise(17.0, 0.3, 0.001, 9.6) == float("inf")  # kp alone exceeds it
+    assert filter_for_noise(5.0, 0.0, 0.001, 9.6) == 0.0
+
+
+@pytest.fixture(scope="module")
+def noisy_ident():
+    # invented loop: a fast lag with a dead time, measurement noise 2 % of the oscillation
+    # (amplitude about 1.6), hysteresis 2.5 noise deviations
+    rec = simulate_relay([8.0], [0.02, 1.0], 0.004, 1.0, 0.08, 0.0, 0.001, 3.0,
+                         noise_std=0.032, seed=4)
+    return identify(rec)
+
+
+def test_noise_bound_limits_every_designed_output_deviation(noisy_ident):
+    sigma = noisy_ident.noise_std
+    free = tune(noisy_ident, "pid", 1.4, sample_time_s=0.001)
+    bound = 0.7 * free.get("ms_constrained").output_noise  # a bound that bites
+    res = tune(noisy_ident, "pid", 1.4, sample_time_s=0.001, max_output_noise=bound)
+    c = res.get("ms_constrained")
+    # the design meets both bounds: Ms (checked on the model) and the output noise
+    assert c.output_noise <= bound * 1.001 and c.ms <= 1.4 * 1.01
+    assert c.kp < bound / sigma
+    # a derivative filter at most Td/2 (N >= 2), or no derivative
+    assert c.kd == 0 or c.tf_s <= c.kd / c.kp / 2 * 1.001
+    assert res.recommended == "ms_constrained"
+    for cand in res.candidates:
+        if cand.kp < bound / sigma:  # a filter could help: every rule got one long enough
+            assert cand.output_noise <= bound * 1.001, cand.rule
+        else:
+            assert any("not recommended" in n for n in cand.notes), cand.rule
+    # python-control margins of the noise-bounded design on the identified model (Padé delay)
+    num, den, L = noisy_ident.model_loop.tf()
+    pn, pd = control.pade(L, 12)
+    loop = _pid_tf(c.kp, c.ki, c.kd, c.tf_s) * control.tf(num, den) * control.tf(pn, pd)
+    assert c.ms == pytest.approx(1 / control.stability_margins(loop)[2], rel=2e-3)
+    # without a bound nothing changes
+    assert free.get("ms_constrained").output_noise > bound
+    with pytest.raises(ValueError, match="max_output_noise"):
+        tune(noisy_ident, "pid", max_output_noise=0.0)

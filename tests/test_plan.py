@@ -48,6 +48,22 @@ loop = "rate"
 """))
     assert plan.limits.angle_rad == pytest.approx(math.radians(20))
     assert plan.limits.rate_rad_s == pytest.approx(math.radians(300))
+    assert plan.output_noise_fraction == 0.1  # the default noise allowance
+
+
+def test_output_noise_allowance_reaches_the_tuning(tmp_path):
+    from agent.logbook.records import tune_kwargs
+    plan = load_plan(write(tmp_path, """
+[stand]
+output_noise_fraction = 0.05
+[[loop]]
+axis = "roll"
+loop = "rate"
+"""))
+    assert plan.output_noise_fraction == 0.05
+    # the analysis input the workflow logs carries the bound to tune() (and to re-analysis)
+    kw = tune_kwargs({"sample_time_s": 0.001, "max_output_noise": 0.05 * 2.0})
+    assert kw["max_output_noise"] == pytest.approx(0.1)
 
 
 @pytest.mark.parametrize("text, needle", [
@@ -64,6 +80,8 @@ loop = "rate"
     ('[stand]\nverfy = false\n[[loop]]\naxis = "roll"\nloop = "rate"\n', "unknown key 'verfy'"),
     ('[stand]\nverify_time_factor = 0.5\n[[loop]]\naxis = "roll"\nloop = "rate"\n',
      "verify_time_factor"),
+    ('[stand]\noutput_noise_fraction = 0\n[[loop]]\naxis = "roll"\nloop = "rate"\n',
+     "output_noise_fraction = 0 is out of range"),
 ])
 def test_bad_plans_give_clear_errors(tmp_path, text, needle):
     with pytest.raises(PlanError) as err:

@@ -13,6 +13,17 @@ Discretisation (backward Euler at the loop's sample time ``Ts``), what the board
     D[k]   = -kd*(yf[k] - yf[k-1])/Ts
     u[k]   = kp*(b*r[k] - y[k]) + I[k] + D[k]
 
+Noise gain: white measurement noise of deviation sigma_n reaches the output through the
+proportional and derivative terms as ``sigma_u = noise_gain * sigma_n``, the H2 norm
+``sqrt(sum h_k^2)`` of ``kp + D(z)``: with ``g = kd/(tf_s + Ts)`` the impulse response is
+``h_0 = kp + g``, ``h_k = g alpha^(k-1) (alpha - 1)``, so
+``noise_gain^2 = (kp + g)^2 + g^2 (1 - alpha)/(1 + alpha)``. The integral term is left out: it
+integrates the noise only at low frequency, where the closed loop removes it. The derivative
+filter is the usual way to bound it (Åström & Hägglund 2006, Advanced PID Control, ISA, ch. 3,
+on filtering the derivative against measurement noise); how much output noise is acceptable is
+the user's (the workflow allows a tenth of the actuator range by default: common practice, no
+source).
+
 Backward Euler keeps the filter and the integrator stable for any ``Ts`` and needs no
 pre-warping; at loop rates 20x or more above the crossover its phase error is a few degrees,
 which the designs absorb because they are made on the loop model (hold included).
@@ -22,7 +33,8 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["controller_freq", "discrete_polys", "discretize", "standard_form"]
+__all__ = ["controller_freq", "discrete_polys", "discretize", "filter_for_noise", "noise_gain",
+           "standard_form"]
 
 
 def controller_freq(kp: float, ki: float, kd: float, tf_s: float, w: np.ndarray) -> np.ndarray:
@@ -34,6 +46,36 @@ def controller_freq(kp: float, ki: float, kd: float, tf_s: float, w: np.ndarray)
     if kd:
         c = c + kd * s / (tf_s * s + 1)
     return c
+
+
+def noise_gain(kp: float, kd: float, tf_s: float, sample_time_s: float) -> float:
+    """Output deviation per unit of white measurement noise, through the proportional and
+    filtered derivative terms as the board runs them (see the module docstring)."""
+    if not kd:
+        return abs(float(kp))
+    ts = float(sample_time_s)
+    alpha = tf_s / (tf_s + ts)
+    g = kd / (tf_s + ts)
+    return float(np.sqrt((kp + g) ** 2 + g * g * (1.0 - alpha) / (1.0 + alpha)))
+
+
+def filter_for_noise(kp: float, kd: float, sample_time_s: float, gain_max: float) -> float:
+    """Shortest derivative filter time with ``noise_gain <= gain_max``: 0.0 when no filter is
+    needed, ``inf`` when the proportional gain alone exceeds ``gain_max`` (no filter can help)."""
+    from scipy.optimize import brentq
+    if abs(kp) >= gain_max:
+        return float("inf")
+    if not kd or noise_gain(kp, kd, 0.0, sample_time_s) <= gain_max:
+        return 0.0
+    ts = float(sample_time_s)
+
+    def excess(log_tf):
+        return noise_gain(kp, kd, float(np.exp(log_tf)), ts) - gain_max
+
+    hi = np.log(ts)
+    while excess(hi) > 0:  # the gain falls towards |kp| as the filter lengthens
+        hi += 2.0
+    return float(np.exp(brentq(excess, np.log(ts) - 30.0, hi, xtol=1e-6)))
 
 
 def standard_form(kp: float, ki: float, kd: float, tf_s: float) -> dict:

@@ -13,6 +13,13 @@ bound usually lies on that boundary); the best point is refined with Nelder–Me
 constraint. Points whose load response has not settled within the horizon are discarded, which
 also excludes unstable loops.
 
+Measurement noise: with ``noise_gain_max`` the controller's noise gain (output deviation per unit
+of white measurement noise, :func:`agent.analysis.controller.noise_gain`) is bounded too: the
+derivative filter is lengthened as far as that needs (its phase lag then counts in Ms and the
+IAE), but never beyond ``Td/2`` (N = 2: a longer filter leaves a lag, not a derivative; common
+practice, no source), and a proportional gain above the bound is not considered (no filter
+helps there). Such points are infeasible, so the search moves to a smaller kp or kd.
+
 A PD controller has no integral action, so its load IAE is unbounded; its design maximises
 ``kp`` (the load stiffness) under the same Ms bound.
 """
@@ -24,12 +31,14 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import optimize
 
-from .controller import controller_freq
+from .controller import controller_freq, filter_for_noise
 from .lti import freq_response
 from .predict import LoopSim
 from .robustness import sensitivity_peak
 
 __all__ = ["Design", "ms_constrained_design"]
+
+MIN_FILTER_N = 2.0  # the noise bound may lengthen the derivative filter to Td/2, no further
 
 
 @dataclass(frozen=True)
@@ -48,8 +57,11 @@ class Design:
 
 
 class _Problem:
-    def __init__(self, model, ms_target, sample_time_s, filter_n, min_tf_s, extra_models=()):
+    def __init__(self, model, ms_target, sample_time_s, filter_n, min_tf_s, extra_models=(),
+                 noise_gain_max=None):
         self.model = model
+        self.ts = sample_time_s
+        self.noise_gain_max = noise_gain_max
         self.sim = LoopSim(model, sample_time_s)
         self.wu, self.tu = self.sim.wu, self.sim.tu
         g_u = freq_response(model, np.array([self.wu]))[0]
@@ -67,9 +79,23 @@ class _Problem:
     def tf_of(self, kp, kd):
         if kd <= 0:
             return 0.0
-        return max(kd / kp / self.filter_n, self.min_tf)
+        tf = max(kd / kp / self.filter_n, self.min_tf)
+        if self.noise_gain_max is not None:
+            tf = max(tf, filter_for_noise(kp, kd, self.ts, self.noise_gain_max))
+        return tf
+
+    def feasible(self, kp, kd):
+        """False when the noise bound cannot be met: kp alone amplifies the noise beyond it, or
+        the derivative would need a filter longer than Td/MIN_FILTER_N."""
+        if self.noise_gain_max is None:
+            return True
+        if kp >= self.noise_gain_max:
+            return False
+        return kd <= 0 or self.tf_of(kp, kd) <= kd / kp / MIN_FILTER_N
 
     def ms(self, kp, ki, kd):
+        if not self.feasible(kp, kd):
+            return float("inf")
         c = controller_freq(kp, ki, kd, self.tf_of(kp, kd), self.w)
         ms = float(np.max(np.abs(1.0 / (1.0 + c * self.g))))
         for g in self.g_extra:
@@ -133,6 +159,8 @@ def _objective(p: _Problem, with_d: bool):
         kp, ki = np.exp(x[0]), np.exp(x[1])
         kd = np.exp(x[2]) if with_d else 0.0
         ms = p.ms(kp, ki, kd)
+        if not np.isfinite(ms):
+            return 1e30
         v, settled = p.iae(kp, ki, kd)
         if not np.isfinite(v) or not settled:
             return 1e30
@@ -144,15 +172,21 @@ def _objective(p: _Problem, with_d: bool):
 
 def ms_constrained_design(model, controller: str = "pi", ms_target: float = 1.4,
                           sample_time_s: float | None = None, filter_n: float = 10.0,
-                          min_tf_s: float = 0.0, extra_models: tuple = ()) -> Design:
+                          min_tf_s: float = 0.0, extra_models: tuple = (),
+                          noise_gain_max: float | None = None) -> Design:
     """IAE-optimal PI/PID for a unit load step under ``Ms <= ms_target`` on ``model``
     (or the stiffest PD under the same bound); see the module docstring.
 
     ``extra_models``: other plausible models of the same loop; the Ms bound is then enforced
-    on every one of them (the IAE is still judged on ``model``)."""
+    on every one of them (the IAE is still judged on ``model``). ``noise_gain_max``: bound on
+    the controller's noise gain (needs ``sample_time_s``)."""
     if ms_target <= 1.0:
         raise ValueError(f"ms_target must exceed 1 (got {ms_target}); 1.2–2.0 is the usual range.")
-    p = _Problem(model, ms_target, sample_time_s, filter_n, min_tf_s, tuple(extra_models))
+    if noise_gain_max is not None and not (noise_gain_max > 0 and sample_time_s):
+        raise ValueError("a noise-gain bound needs a positive bound and the sample time")
+    p = _Problem(model, ms_target, sample_time_s, filter_n, min_tf_s, tuple(extra_models),
+                 noise_gain_max)
+    why_none = (" and the noise-gain bound" if noise_gain_max is not None else "")
     if controller == "pd":
         best = None
         for td in p.tu * np.array([0.01, 0.03, 0.06, 0.1, 0.15, 0.22, 0.3, 0.45]):
@@ -161,7 +195,7 @@ def ms_constrained_design(model, controller: str = "pi", ms_target: float = 1.4,
                 best = (kp, td)
         if best is None:
             return Design(0, 0, 0, 0, float("nan"), float("inf"), False, False,
-                          "no PD meets the Ms bound")
+                          f"no PD meets the Ms bound{why_none}")
         kp, td = best
         kd = kp * td
         tf_s = p.tf_of(kp, kd)
@@ -184,7 +218,7 @@ def ms_constrained_design(model, controller: str = "pi", ms_target: float = 1.4,
                 cands.append((v, kp, ki, kd))
     if not cands:
         return Design(0, 0, 0, 0, float("nan"), float("inf"), False, False,
-                      "no stable controller meets the Ms bound on this model")
+                      f"no stable controller meets the Ms bound{why_none} on this model")
     cands.sort(key=lambda c: c[0])
     f = _objective(p, with_d)
     best_x, best_v = None, np.inf
@@ -197,6 +231,8 @@ def ms_constrained_design(model, controller: str = "pi", ms_target: float = 1.4,
             best_x, best_v = r.x, r.fun
     kp, ki = float(np.exp(best_x[0])), float(np.exp(best_x[1]))
     kd = float(np.exp(best_x[2])) if with_d else 0.0
+    if not p.feasible(kp, kd):
+        _, kp, ki, kd = cands[0]
     if p.ms(kp, ki, kd) > ms_target:
         ki2 = p.ki_max(kp, kd)
         if ki2 is not None and ki2 < ki:

@@ -27,6 +27,13 @@ the board's discrete coefficients (:mod:`agent.analysis.controller`), an integra
 set-point weight.
 
 Derivative filter: ``tf_s = Td/10`` (common practice, no source), never below one sample.
+Measurement noise: with ``max_output_noise`` (the output deviation the measurement noise may
+cause; the workflow allows a tenth of the actuator range) and the identified noise deviation,
+every candidate's derivative filter is lengthened until its noise gain
+(:func:`agent.analysis.controller.noise_gain`) keeps the output noise within that bound, and
+``ms_constrained`` is designed under the same bound (it also limits kp). A rule whose kp alone
+exceeds it keeps its gains, with a note, and is not recommended. Each candidate reports
+``output_noise``, the output deviation its gains make of the identified noise.
 Set-point weight: 1 for the ultimate-point rules (their published form); the AMIGO PID rule's
 own weight; otherwise the largest-benefit weight in {1, 0.8, ..., 0} that keeps the predicted
 overshoot at or below 10 % with the smallest set-point IAE.
@@ -41,7 +48,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from .controller import discretize, standard_form
+from .controller import discretize, filter_for_noise, noise_gain, standard_form
 from .design import ms_constrained_design
 from .identify import Identification
 from .predict import StepPrediction, predict_step
@@ -90,6 +97,7 @@ class Candidate:
     i_limit: float
     source: str = ""
     notes: tuple[str, ...] = field(default_factory=tuple)
+    output_noise: float = float("nan")  # output deviation caused by the measurement noise
 
     @property
     def standard(self) -> dict:
@@ -106,6 +114,7 @@ class Candidate:
             "gm": float(self.gm), "pm_deg": float(self.pm_deg),
             "predicted": self.predicted.to_dict(), "discrete": dict(self.discrete),
             "i_limit": float(self.i_limit), "notes": list(self.notes),
+            "output_noise": float(self.output_noise),
         }
 
 
@@ -164,15 +173,17 @@ def _choose_b(model, g: _Gains, sample_time_s: float) -> float:
 
 def make_candidate(rule: str, controller: str, model, kp: float, ki: float, kd: float,
                    tf_s: float, b: float, sample_time_s: float, i_limit: float,
-                   notes: tuple[str, ...] = ()) -> Candidate:
-    """Appraise gains on ``model`` (loop basis) and wrap them as a :class:`Candidate`."""
+                   notes: tuple[str, ...] = (), noise_std: float = float("nan")) -> Candidate:
+    """Appraise gains on ``model`` (loop basis) and wrap them as a :class:`Candidate`
+    (``noise_std``: the measurement noise, for ``output_noise``)."""
     ms = sensitivity_peak(model, kp, ki, kd, tf_s)[0]
     gm, pm, _, _ = margins(model, kp, ki, kd, tf_s)
     pred = predict_step(model, _Gains(kp, ki, kd, tf_s, b), sample_time_s)
     disc = discretize(kp, ki, kd, tf_s, b, sample_time_s, i_limit)
     return Candidate(rule, controller, float(kp), float(ki), float(kd), float(tf_s), float(b),
                      float(ms), float(gm), float(pm), pred, disc, float(i_limit),
-                     SOURCES.get(rule, ""), tuple(notes))
+                     SOURCES.get(rule, ""), tuple(notes),
+                     float(noise_gain(kp, kd, tf_s, sample_time_s) * noise_std))
 
 
 def _fopdt_for_amigo(ident: Identification) -> tuple[float, float, float, bool]:
@@ -224,13 +235,18 @@ def _plausible_models(ident: Identification) -> tuple:
 
 
 def tune(ident: Identification, controller: str = "pi", ms_target: float = 1.4,
-         sample_time_s: float = 0.001, output_limit: float | None = None) -> TuningResult:
+         sample_time_s: float = 0.001, output_limit: float | None = None,
+         max_output_noise: float | None = None) -> TuningResult:
     """Tuning candidates for ``controller`` in {"pi", "pd", "pid"} from an identification.
+
+    ``max_output_noise``: the output deviation the identified measurement noise may cause
+    (None: no bound); see the module docstring.
 
     Raises
     ------
     ValueError
-        For an unknown controller type, ``ms_target <= 1`` or a non-positive sample time.
+        For an unknown controller type, ``ms_target <= 1``, a non-positive sample time or a
+        non-positive ``max_output_noise``.
     """
     controller = str(controller).lower()
     if controller not in RULES:
@@ -240,8 +256,14 @@ def tune(ident: Identification, controller: str = "pi", ms_target: float = 1.4,
                          "(1.4 is a robust default, 2.0 an aggressive one).")
     if not sample_time_s > 0:
         raise ValueError(f"sample_time_s is {sample_time_s}; expected the loop's sample time (s).")
+    if max_output_noise is not None and not max_output_noise > 0:
+        raise ValueError(f"max_output_noise is {max_output_noise}; expected a positive output "
+                         "deviation (or None for no bound).")
     model = ident.model_loop
     ku, tu = ident.best.ku, ident.best.tu_s
+    sigma = float(ident.noise_std) if np.isfinite(ident.noise_std) else 0.0
+    gain_max = (float(max_output_noise) / sigma
+                if max_output_noise is not None and sigma > 0 else None)
     d = ident.relay_amplitude if np.isfinite(ident.relay_amplitude) else 0.0
     trim = abs(ident.bias_estimate) if ident.bias_estimate is not None else 0.0
     i_limit = float(output_limit) if output_limit else 2.0 * max(trim, d)
@@ -249,7 +271,14 @@ def tune(ident: Identification, controller: str = "pi", ms_target: float = 1.4,
     notes: list[str] = []
 
     def tf_rule(kp, kd):
-        return max(kd / kp / 10.0, sample_time_s) if kd > 0 else 0.0
+        if kd <= 0:
+            return 0.0
+        tf = max(kd / kp / 10.0, sample_time_s)
+        if gain_max is not None:
+            need = filter_for_noise(kp, kd, sample_time_s, gain_max)
+            if np.isfinite(need):
+                tf = max(tf, need)
+        return tf
 
     for rule in RULES[controller]:
         try:
@@ -273,7 +302,8 @@ def tune(ident: Identification, controller: str = "pi", ms_target: float = 1.4,
             else:  # ms_constrained
                 des = ms_constrained_design(model, controller, ms_target, sample_time_s,
                                             min_tf_s=sample_time_s,
-                                            extra_models=_plausible_models(ident))
+                                            extra_models=_plausible_models(ident),
+                                            noise_gain_max=gain_max)
                 if not des.success and des.kp <= 0:
                     notes.append(f"ms_constrained: {des.message}")
                     continue
@@ -284,18 +314,25 @@ def tune(ident: Identification, controller: str = "pi", ms_target: float = 1.4,
         except ValueError as exc:
             notes.append(f"{rule}: {exc}")
             continue
+        c_notes = ()
+        if gain_max is not None and abs(kp) >= gain_max:
+            c_notes = (f"kp alone turns the measurement noise ({sigma:.3g}) into an output "
+                       f"deviation of {abs(kp) * sigma:.3g}, above the {max_output_noise:.3g} "
+                       "allowed; not recommended",)
+            notes.append(f"{rule}: {c_notes[0]}")
         cands.append(make_candidate(rule, controller, model, kp, ki, kd, tf_s, b,
-                                    sample_time_s, i_limit))
+                                    sample_time_s, i_limit, c_notes, sigma))
     if not cands:
         raise ValueError("No tuning candidate could be computed from this identification.")
-    names = [c.rule for c in cands]
+    quiet = [c for c in cands if gain_max is None or abs(c.kp) < gain_max] or cands
+    names = [c.rule for c in quiet]
     rec = None
     if "ms_constrained" in names:
-        c = cands[names.index("ms_constrained")]
+        c = quiet[names.index("ms_constrained")]
         if c.ms <= ms_target * 1.02 and c.predicted.settled:
             rec = "ms_constrained"
     if rec is None and "amigo" in names:
         rec = "amigo"
     if rec is None:
-        rec = min(cands, key=lambda c: c.ms).rule
+        rec = min(quiet, key=lambda c: c.ms).rule
     return TuningResult(tuple(cands), rec, controller, float(ms_target), tuple(notes))

@@ -57,6 +57,8 @@ def tune_kwargs(analysis_input: dict) -> dict:
         kw["ms_target"] = float(ai["ms_target"])
     if ai.get("output_limit") is not None:
         kw["output_limit"] = float(ai["output_limit"])
+    if ai.get("max_output_noise") is not None:
+        kw["max_output_noise"] = float(ai["max_output_noise"])
     return kw
 
 

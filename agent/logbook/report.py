@@ -429,13 +429,14 @@ def _relay_section(sess, rec, cols, kills, units, reanalysis) -> list[str]:
     lt = result.get("tuning")
     if isinstance(lt, dict) and isinstance(lt.get("candidates"), list):
         parts.append("<h4>Candidate gains (as logged)</h4>")
-        keys = ("rule", "kp", "ki", "kd", "tf_s", "b", "ms", "gm", "pm_deg")
+        keys = ("rule", "kp", "ki", "kd", "tf_s", "b", "ms", "gm", "pm_deg", "output_noise")
         rows, classes = [], []
         for c in lt["candidates"]:
             if isinstance(c, dict):
                 rows.append([c.get(k) for k in keys])
                 classes.append("chosen" if chosen_rule and c.get("rule") == chosen_rule else "")
-        parts.append(_table(["rule", "Kp", "Ki", "Kd", "Tf [s]", "b", "Ms", "GM", "PM [°]"],
+        parts.append(_table(["rule", "Kp", "Ki", "Kd", "Tf [s]", "b", "Ms", "GM", "PM [°]",
+                             "noise in u"],
                             rows, classes))
         if lt.get("recommended") is not None:
             parts.append(f"<p>Recommended: <b>{_esc(_fmt(lt.get('recommended')))}</b></p>")

@@ -7,7 +7,7 @@ and the host-side kill latency (offending telemetry sample's arrival -> kill fra
 repeated trips of the host monitor. `--json` prints one JSON object.
 
     python tests/bench/autotune.py [--json] [--scenario gimbal-quad] [--speed 10] [--trips 20]
-                                   [--runs 1]
+                                   [--runs 1] [--log-dir DIR]
 """
 
 from __future__ import annotations
@@ -114,10 +114,13 @@ def main() -> int:
     ap.add_argument("--speed", default="10")
     ap.add_argument("--trips", type=int, default=20)
     ap.add_argument("--runs", type=int, default=1, help="demo runs (seeds 0..runs-1)")
+    ap.add_argument("--log-dir", default=None,
+                    help="keep the demo sessions' logs here (default: a temporary folder)")
     args = ap.parse_args()
     runs = []
     for seed in range(args.runs):
-        with tempfile.TemporaryDirectory() as logs:
+        with tempfile.TemporaryDirectory() as tmp:
+            logs = args.log_dir or tmp
             wall, demo = demo_run(args.scenario, args.speed, logs, seed)
             loops = relay_figures(demo["session"])
         by_key = {lr["loop"]: lr for lr in demo.get("loops", [])}
@@ -126,7 +129,7 @@ def main() -> int:
             r["status"] = lr.get("status")
             r["fallback"] = bool(lr.get("first_try"))  # verified only by the robust fallback
             r["periods_recorded"] = (lr.get("relay") or {}).get("periods_recorded")
-        runs.append({"seed": seed, "demo_wall_s": round(wall, 2),
+        runs.append({"seed": seed, "demo_wall_s": round(wall, 2), "session": demo["session"],
                      "demo_outcome": demo["outcome"], "loops": loops})
         if not args.json:
             print_run(args, runs[-1])

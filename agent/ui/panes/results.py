@@ -34,7 +34,8 @@ class ResultsPane(Vertical):
     def on_mount(self) -> None:
         self.loops: dict = {}  # key -> LoopResult
         table = self.query_one("#candidates", DataTable)
-        table.add_columns("rule", "kp", "ki", "kd", "Ms", "GM", "PM deg", "os %", "rise s")
+        table.add_columns("rule", "kp", "ki", "kd", "Ms", "GM", "PM deg", "os %", "rise s",
+                          "noise u")
         self.show(None)
 
     # ------------------------------------------------------------------ data
@@ -143,7 +144,8 @@ class ResultsPane(Vertical):
                 p = c.predicted
                 table.add_row(f"{tag}{c.rule}", fmt(c.kp, 3), fmt(c.ki, 3), fmt(c.kd, 3),
                               fmt(c.ms, 3), fmt(c.gm, 3), fmt(c.pm_deg, 3),
-                              fmt(p.overshoot * 100, 3), fmt(p.rise_s, 3))
+                              fmt(p.overshoot * 100, 3), fmt(p.rise_s, 3),
+                              fmt(c.output_noise, 2))
             if keep_row is not None and 0 <= keep_row < table.row_count:
                 table.move_cursor(row=keep_row)
             elif chosen is not None:
