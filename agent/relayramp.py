@@ -22,13 +22,17 @@ the hold) the periods scatter even when the limit cycle is stationary, so the to
 to what the noise alone produces: a switching instant moves by about sigma / (a w) when the
 measurement crosses the switching level with slope a w, so one period (two rising edges) varies
 by at least sqrt(2) sigma / (2 pi a) = 0.23 sigma/a of itself, and the jittered switching makes
-the oscillation's own amplitude vary too. On the invented gimbal's rate loops (sigma/a = 0.05,
-where sensor noise, friction and quantisation all jitter the switching) the period of a
-stationary cycle varied by 0.6 sigma/a (standard deviation) and its first-harmonic amplitude by
-1.1 sigma/a; the range of three periods stays within about 2.5-3 such deviations, hence
-``1.5 sigma/a`` (plus two samples of period quantisation) and ``3 sigma/a``. A drift beyond
-that still keeps the relay running (own measurement; the crossing-time jitter sigma/slope is
-common practice, no source).
+the oscillation's own amplitude vary too. Measured on the invented gimbal over 12 autotunes
+(tests/bench/autotune.py --log-dir, 35-59 periods per loop): on its rate loops (sigma/a 0.04-0.2,
+where sensor noise, friction and quantisation all jitter the switching) a stationary cycle's
+period varied by 0.59 sigma/a (median; 0.68 at most) and its first-harmonic amplitude by 1.23
+sigma/a (1.48 at most); the angle loops scatter less. The tolerances are the 95th percentile of
+the range of three such periods: 3.31 standard deviations (the range of three normal samples,
+scipy.stats.studentized_range.ppf(0.95, 3, inf)) of a scatter of 0.65 and 1.3 sigma/a, so
+``2.15 sigma/a`` for the period (plus two samples of period quantisation) and ``4.3 sigma/a``
+for the amplitude: a stationary cycle passes its first three periods about nine times in ten.
+A drift beyond that still keeps the relay running (own measurement; the crossing-time jitter
+sigma/slope is common practice, no source).
 Precision: convergence says the limit cycle is steady, not that enough of it has been seen. On a
 noisy loop the identified ultimate gain scatters by about 0.75 (sigma/a) / sqrt(n) over n
 recorded periods (measured: 0.79 % standard deviation over 10 noise draws on a 40-period record
@@ -43,6 +47,13 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
+
+
+# scatter of a stationary relay cycle in units of sigma/a (standard deviation of one period's
+# length and of its first-harmonic amplitude, relative), measured: see the module docstring
+PERIOD_SCATTER = 0.65
+AMP_SCATTER = 1.3
+RANGE3_P95 = 3.31  # 95th percentile of the range of three normal samples, in deviations
 
 
 def _harmonic_amplitude(seg: np.ndarray) -> float:
@@ -199,14 +210,17 @@ class RelaySupervisor:
     def tolerances(self, amplitude: float, period_s: float = 0.0,
                    dt: float = 0.0) -> tuple[float, float]:
         """Period and amplitude spread (max - min over mean, three periods) accepted as
-        stationary at this oscillation amplitude: ``period_tol`` and ``amp_tol``, widened to
-        ``1.5 sigma/a`` and ``3 sigma/a`` on a noisy measurement (see the module docstring);
-        the period's then also gets the two samples by which noise can move two edges."""
+        stationary at this oscillation amplitude: ``period_tol`` and ``amp_tol``, widened on a
+        noisy measurement to the 95th percentile of the range of three stationary periods
+        (``RANGE3_P95`` times ``PERIOD_SCATTER`` or ``AMP_SCATTER`` sigma/a, see the module
+        docstring); the period's then also gets the two samples by which noise can move two
+        edges."""
         ratio = self.noise_std / amplitude if amplitude > 0 and self.noise_std > 0 else 0.0
         if ratio == 0.0:
             return self.period_tol, self.amp_tol
         quant = 2.0 * dt / period_s if period_s > 0 and dt > 0 else 0.0
-        return max(self.period_tol, 1.5 * ratio + quant), max(self.amp_tol, 3.0 * ratio)
+        return (max(self.period_tol, RANGE3_P95 * PERIOD_SCATTER * ratio + quant),
+                max(self.amp_tol, RANGE3_P95 * AMP_SCATTER * ratio))
 
     def _adjust(self, n: int, need_amp: bool, need_bias: bool, a_seen: float, mean_u: float,
                 period_s: float) -> Decision:

@@ -100,17 +100,18 @@ def test_whole_stand_autotune_of_the_gimbal(tmp_path, mock_pty):
     assert max(keys.index(f"{a}.rate") for a in ("roll", "pitch", "yaw")) < \
         min(keys.index(f"{a}.angle") for a in ("roll", "pitch", "yaw"))
     for lr in out["loops"]:
-        # every loop converged and was identified; a failed verification was rolled back
+        # every loop converged and was identified
         assert lr["relay"]["periods_after_ramp"] <= 10
         assert "not stationary" not in lr["relay"]["note"], lr["relay"]
         assert lr["ultimate_gain"] > 0 and lr["ultimate_period_s"] > 0
         assert lr["status"] in ("verified", "rolled_back"), lr
         assert lr["verification"]["measured"] and lr["verification"]["predicted_metrics"]
         check_gains_on_board(h, lr)
-    # tests/bench/autotune.py --runs 8 measured 48 of 48 loops verified, 8 of them (the yaw
-    # rate loop, whose friction the linear model misses) by the fallback candidate; one
-    # rollback is allowed here, not two
-    assert sum(lr["status"] == "verified" for lr in out["loops"]) >= 5
+    # verification passes on every loop (the robust fallback candidate may be the one that
+    # passed; tests/bench/autotune.py --runs 6 measured 36 of 36 verified, none by the fallback,
+    # once the designs bounded the output noise)
+    assert all(lr["status"] == "verified" for lr in out["loops"]), \
+        [(lr["loop"], lr["verification"].get("problems")) for lr in out["loops"]]
     assert len(out["cascade"]) == 3
     # the log is complete: every experiment has telemetry and a result
     rec = read_session(out["session"])
