@@ -405,5 +405,6 @@ def test_results_list_the_fallback_candidate_that_was_applied():
     assert d["chosen"] == "fallback_ms1.2"
     assert [c["rule"] for c in d["candidates"]][-1] == "fallback_ms1.2"
     assert d["candidates"][-1]["kp"] == pytest.approx(lr.chosen.kp)
+    assert all("output_noise" in c for c in d["candidates"])  # what each makes of the noise
     lr.chosen = tuning.candidates[0]
     assert ResultsPane._rows(lr) == list(tuning.candidates)

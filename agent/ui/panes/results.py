@@ -34,8 +34,7 @@ class ResultsPane(Vertical):
     def on_mount(self) -> None:
         self.loops: dict = {}  # key -> LoopResult
         table = self.query_one("#candidates", DataTable)
-        table.add_columns("rule", "kp", "ki", "kd", "Ms", "GM", "PM deg", "os %", "rise s",
-                          "noise u")
+        table.add_columns("rule", "kp", "ki", "kd", "Ms", "GM", "PM deg", "os %", "rise s")
         self.show(None)
 
     # ------------------------------------------------------------------ data
@@ -121,6 +120,8 @@ class ResultsPane(Vertical):
                                  f"{relay.get('periods_recorded', '-')} analysed")]
         if lr.chosen is not None:
             rows.append(("chosen", lr.chosen.rule))
+            # what the chosen gains make of the measurement noise at the loop's output
+            rows.append(("noise in u", fmt(lr.chosen.output_noise, 3)))
         if lr.first_try:
             rows.append(("first try", f"{lr.first_try['rule']} missed its step: "
                                       + "; ".join(lr.first_try.get("problems") or [])))
@@ -144,8 +145,7 @@ class ResultsPane(Vertical):
                 p = c.predicted
                 table.add_row(f"{tag}{c.rule}", fmt(c.kp, 3), fmt(c.ki, 3), fmt(c.kd, 3),
                               fmt(c.ms, 3), fmt(c.gm, 3), fmt(c.pm_deg, 3),
-                              fmt(p.overshoot * 100, 3), fmt(p.rise_s, 3),
-                              fmt(c.output_noise, 2))
+                              fmt(p.overshoot * 100, 3), fmt(p.rise_s, 3))
             if keep_row is not None and 0 <= keep_row < table.row_count:
                 table.move_cursor(row=keep_row)
             elif chosen is not None:
