@@ -143,6 +143,56 @@ def test_heave_trim_centring_and_integral_action(tmp_path, mock_pty):
         check_gains_on_board(h, lr)
 
 
+@pytest.mark.parametrize("anti_windup", [True, False])
+def test_stand_lock_released_mid_hold_windup_overshoot(mock_pty, anti_windup):
+    # Integral windup on a locked stand (common practice, no source): the rate loop holds
+    # 0.5 rad/s while the stand lock keeps the beam still, so the error stays and the integrator
+    # charges; then the engineer releases the lock. With anti-windup as tetherloop writes it
+    # (integrator clamped at the output limit, the board's clamping mode) the charge is bounded
+    # and so is the overshoot: it stays inside the 5 rad/s kill limit (measured peak 3.6 rad/s,
+    # the same after 2 s or 6 s of lock) and the loop settles on its setpoint. Without it
+    # (back-calculation so slow it does nothing, no clamp) the charge grows with the lock time
+    # and the overshoot crosses the limit: the board kills.
+    from agent.stand import Stand
+    from agent.workflows import apply_gains
+    h = mock_pty("single-axis-locked", speed=2.0)
+    st = Stand.connect(h.port)
+    st.confirmed = True
+    try:
+        apply_gains(st, {"roll.rate.aw_mode": 0, "roll.rate.i_limit": 1.0} if anti_windup else
+                    {"roll.rate.aw_mode": 1, "roll.rate.aw_tt": 100.0, "roll.rate.i_limit": 0.0})
+        st.arm()
+        st.buffer.start()
+        st.session.telemetry(1000, [0], 0)
+        st.session.start_experiment(kind=ExperimentKind.HOLD, axis=0, loop=0, setpoint=0.5,
+                                    duration_s=12.0, kill_angle_rad=2.5, kill_rate_rad_s=5.0,
+                                    kill_heave_m=5.0, kill_saturation_s=20.0)
+
+        def rows():
+            c = st.buffer.axis(0)
+            m = c["loop"] == 0
+            return (c["time_us"][m] - c["time_us"][m][0]) * 1e-6, c["measurement"][m]
+
+        assert wait_for(lambda: len(rows()[0]) > 1 and rows()[0][-1] >= 4.0, 30)
+        assert h.firmware.plant("roll").w == 0.0  # the lock held the beam
+        h.firmware.set_blocked("roll", False)  # the engineer releases the stand lock
+        t_release = rows()[0][-1]
+        wait_for(lambda: rows()[0][-1] >= t_release + 2.0
+                 or h.firmware.state == DeviceState.KILLED, 30)
+        t, y = rows()
+        peak = float(y[t > t_release].max())
+        if anti_windup:
+            assert h.firmware.state == DeviceState.RUNNING and not st.kills
+            assert 0.5 < peak < 5.0
+            assert float(np.mean(y[t > t_release + 1.5])) == pytest.approx(0.5, abs=0.1)
+        else:
+            assert wait_for(lambda: st.kills, 5)
+            assert h.firmware.state == DeviceState.KILLED
+            assert st.kills[-1]["reason"] == "rate_limit" and peak > 5.0
+    finally:
+        st.close()
+
+
 def test_operator_ctrl_c_kills_mid_relay(tmp_path, mock_pty):
     h = mock_pty("gimbal-quad", speed=2.0)
     proc = start_tune(h, tmp_path, "roll", "angle", stdout=subprocess.PIPE,
