@@ -19,8 +19,8 @@ proportional and derivative terms as ``sigma_u = noise_gain * sigma_n``, the H2 
 ``h_0 = kp + g``, ``h_k = g alpha^(k-1) (alpha - 1)``, so
 ``noise_gain^2 = (kp + g)^2 + g^2 (1 - alpha)/(1 + alpha)``. The integral term is left out: it
 integrates the noise only at low frequency, where the closed loop removes it. The derivative
-filter is the usual way to bound it (Åström & Hägglund 2006, Advanced PID Control, ISA, ch. 3,
-on filtering the derivative against measurement noise); how much output noise is acceptable is
+filter is the usual way to bound it (Åström & Hägglund 2006, Advanced PID Control, ISA, on
+filtering the derivative against measurement noise; reference from memory); how much output noise is acceptable is
 the user's (the workflow allows a tenth of the actuator range by default: common practice, no
 source).
 
