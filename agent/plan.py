@@ -10,6 +10,7 @@ A plan file looks like this (every key optional except the loops)::
     verify = true             # step test after applying; a miss tries the most conservative
                               # candidate once (rule "recommended" only), then rolls back
     verify_overshoot_margin = 0.15  # measured overshoot may exceed the predicted by this
+                              # (plus 2 sigma/step for the loop's own measured spread)
     verify_time_factor = 2.5  # measured rise time within [1/f, f] x the predicted
     output_noise_fraction = 0.1  # output deviation the measurement noise may cause, as a
                               # fraction of the loop's output limit (bounds kp and the

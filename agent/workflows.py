@@ -593,6 +593,36 @@ def apply_gains(stand: Stand, gains: dict[str, float], progress: ProgressFn = _q
     return written
 
 
+def judge_step(measured: dict, predicted: dict, plan: Plan, noise_std: float | None,
+               step: float) -> tuple[list[str], float]:
+    """The verification verdict on a step test's metrics beside the prediction: the problems
+    found (none: passed) and the overshoot allowance used. Pure."""
+    # What the loop does by itself (sensor noise, and on a gusty stand slow wander that the
+    # smoothing keeps) moves both the peak and the final value by about its deviation from the
+    # hold: the measured overshoot of a small step is uncertain by about 2 sigma/step, which
+    # widens the margin (common practice, no source; seen on the invented heave rail, where
+    # gusts moved a 0.05 m/s climb-rate step's overshoot to 78 %)
+    allowance = (2.0 * float(noise_std) / abs(step)
+                 if noise_std and noise_std > 0 and step else 0.0)
+    problems = []
+    if measured["overshoot"] is None or measured["rise_s"] is None:
+        problems.append("the step response never reached the new setpoint")
+    else:
+        margin = plan.verify_overshoot_margin + allowance
+        if measured["overshoot"] > (predicted["overshoot"] or 0.0) + margin:
+            problems.append(f"overshoot {measured['overshoot']:.0%} exceeds the predicted "
+                            f"{predicted['overshoot']:.0%} by more than {margin:.0%}"
+                            + (f" (the margin {plan.verify_overshoot_margin:.0%} plus "
+                               f"{allowance:.0%} for the measurement's own spread)"
+                               if allowance else ""))
+        pr = predicted["rise_s"]
+        f = plan.verify_time_factor
+        if pr and not (pr / f <= measured["rise_s"] <= pr * f):
+            problems.append(f"rise time {measured['rise_s']:.3g} s is outside "
+                            f"[{pr / f:.3g}, {pr * f:.3g}] s around the predicted {pr:.3g} s")
+    return problems, allowance
+
+
 def verify_step(stand: Stand, lp: LoopPlan, plan: Plan, cand, *, setpoint: float,
                 step: float | None = None, noise_std: float | None = None,
                 cand_period_s: float | None = None, progress: ProgressFn = _quiet,
@@ -659,22 +689,11 @@ def verify_step(stand: Stand, lp: LoopPlan, plan: Plan, cand, *, setpoint: float
                 "settling_s": _f(met.settling_s), "iae": _f(met.iae)}
     predicted = {"overshoot": _f(pred.overshoot), "rise_s": _f(pred.rise_s),
                  "settling_s": _f(pred.settling_s), "iae": _f(pred.iae_setpoint * step)}
-    problems = []
-    if measured["overshoot"] is None or measured["rise_s"] is None:
-        problems.append("the step response never reached the new setpoint")
-    else:
-        if measured["overshoot"] > (predicted["overshoot"] or 0.0) + plan.verify_overshoot_margin:
-            problems.append(f"overshoot {measured['overshoot']:.0%} exceeds the predicted "
-                            f"{predicted['overshoot']:.0%} by more than "
-                            f"{plan.verify_overshoot_margin:.0%}")
-        pr = predicted["rise_s"]
-        f = plan.verify_time_factor
-        if pr and not (pr / f <= measured["rise_s"] <= pr * f):
-            problems.append(f"rise time {measured['rise_s']:.3g} s is outside "
-                            f"[{pr / f:.3g}, {pr * f:.3g}] s around the predicted {pr:.3g} s")
+    problems, allowance = judge_step(measured, predicted, plan, noise_std, step)
     curve = {"t_s": [float(x) for x in pred.t_s],
              "y": [float(setpoint + step * v) for v in pred.y_setpoint], "t_offset_s": step_at}
     result = {"step": step, "setpoint": setpoint, "step_at_s": step_at, "measured": measured,
+              "overshoot_allowance": allowance,
               "metrics": measured, "predicted_metrics": predicted, "predicted": curve,
               "passed": not problems, "problems": problems, "experiment": exp_id,
               "exp_id": exp_id}

@@ -98,3 +98,25 @@ def test_plan_against_device_axes():
     plan = plan_from_dict({"loop": [{"axis": "heave", "loop": "rate"}]})
     with pytest.raises(PlanError, match="no 'heave' axis"):
         check_against_device(plan, {"roll": ("rate", "angle")})
+
+
+def test_step_verdict_allows_for_the_measurements_own_spread():
+    # the verdict on a step's metrics beside the prediction (agent.workflows.judge_step): the
+    # overshoot margin widens by 2 sigma/step, what the loop's own spread does to the peak and
+    # the final value of a small step (common practice, no source)
+    from agent.workflows import judge_step
+    plan = plan_from_dict({"loop": [{"axis": "roll", "loop": "rate"}]})
+    pred = {"overshoot": 0.15, "rise_s": 0.3}
+    gusty = {"overshoot": 0.32, "rise_s": 0.2}
+    problems, allowance = judge_step(gusty, pred, plan, None, 0.1)
+    assert allowance == 0.0 and "exceeds the predicted 15% by more than 15%" in problems[0]
+    problems, allowance = judge_step(gusty, pred, plan, 0.02, 0.1)  # sigma/step = 0.2
+    assert allowance == pytest.approx(0.4) and problems == []
+    # a large step leaves little allowance: a real miss is still a miss
+    problems, allowance = judge_step(gusty, pred, plan, 0.02, 2.0)
+    assert allowance == pytest.approx(0.02) and "plus 2% for the measurement" in problems[0]
+    # the rise time is judged by its own factor, noise or not
+    slow = {"overshoot": 0.1, "rise_s": 1.0}
+    assert "rise time 1 s is outside" in judge_step(slow, pred, plan, 0.02, 0.1)[0][0]
+    assert judge_step({"overshoot": None, "rise_s": None}, pred, plan, 0.02, 0.1)[0] == [
+        "the step response never reached the new setpoint"]
