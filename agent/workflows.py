@@ -15,6 +15,7 @@ import atexit
 import contextlib
 import math
 import multiprocessing
+import signal
 import sys
 import threading
 import time
@@ -520,6 +521,13 @@ def _real_std_streams():
         sys.stdout, sys.stderr = saved
 
 
+def _ignore_sigint() -> None:
+    """In the analysis worker: a terminal's Ctrl-C reaches the whole process group, but only
+    the main process acts on it (it kills the stand); the worker would die with a traceback and
+    break the pool."""
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
+
+
 def _analysis_pool() -> ProcessPoolExecutor:
     """One worker process for the numerics: a fit can keep a CPU busy for seconds, and in this
     process it would compete for the interpreter with the link's reader and keepalive threads
@@ -529,7 +537,8 @@ def _analysis_pool() -> ProcessPoolExecutor:
         if _POOL is None:
             with _real_std_streams():
                 pool = ProcessPoolExecutor(max_workers=1,
-                                           mp_context=multiprocessing.get_context("spawn"))
+                                           mp_context=multiprocessing.get_context("spawn"),
+                                           initializer=_ignore_sigint)
                 pool.submit(int).result()  # start the worker now, with the real streams
             _POOL = pool
             atexit.register(_POOL.shutdown, wait=False, cancel_futures=True)

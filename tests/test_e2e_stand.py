@@ -211,6 +211,32 @@ def test_operator_ctrl_c_kills_mid_relay(tmp_path, mock_pty):
     assert any(ev["kind"] == "kill" for ev in rec.events)
 
 
+def test_terminal_ctrl_c_reaches_the_whole_process_group_cleanly(tmp_path, mock_pty):
+    # A terminal's Ctrl-C goes to the foreground process group: tetherloop and its analysis
+    # worker (started by the first loop's analysis). The run must end as an operator kill,
+    # with the finished loops summarised, exit code 5 and no traceback from either process.
+    h = mock_pty("single-axis", speed=10.0)
+    env = dict(os.environ, TETHERLOOP_LOG_DIR=str(tmp_path))
+    proc = subprocess.Popen([sys.executable, "-m", "agent.cli", "autotune", "--port", h.port,
+                             "--confirm-safe"], env=env, stdout=subprocess.PIPE,
+                            stderr=subprocess.PIPE, text=True, start_new_session=True)
+    try:
+        # the second loop's relay: the first loop's analysis has started the worker
+        assert wait_for(lambda: h.firmware.exp is not None
+                        and h.firmware.exp.kind == ExperimentKind.RELAY
+                        and h.firmware.exp.loop == "angle", 240)
+        os.killpg(proc.pid, signal.SIGINT)
+        out, err = proc.communicate(timeout=60)
+    finally:
+        proc.kill()
+    assert proc.returncode == 5, out[-2000:] + err[-2000:]
+    assert "Traceback" not in out + err, out[-3000:] + err[-3000:]
+    assert "outcome: killed" in out and "host_operator" in out
+    assert "roll.rate" in out  # the finished loop is in the summary
+    kills = [e for e in h.firmware.events if e.kind == 4]
+    assert [k.reason for k in kills] == [KillReason.HOST_OPERATOR]  # no link-loss kill after
+
+
 def test_host_process_killed_mid_relay_device_watchdog_disarms(tmp_path, mock_pty):
     h = mock_pty("gimbal-quad", speed=2.0)
     proc = start_tune(h, tmp_path, "pitch", "angle", stdout=subprocess.DEVNULL,

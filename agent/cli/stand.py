@@ -119,19 +119,26 @@ def run_on_stand(args, stand, plan, work, con: Console):
         f"axis {payload.get('axis_name')} value {payload.get('value'):.4g} "
         f"threshold {payload.get('threshold'):.4g} {payload.get('text', '')}"))
 
+    finished = threading.Event()
+
     def worker():
         try:
             box["result"] = work(stand, progress, stop)
         except BaseException as exc:  # reported by the main thread
             box["error"] = exc
+        finally:
+            finished.set()
 
     th = threading.Thread(target=worker, name="tetherloop-workflow", daemon=True)
     interrupted = False
     with bar:
         th.start()
-        while th.is_alive():
+        # an Event, not Thread.join: a Ctrl-C that interrupts join() can leave is_alive()
+        # False while the workflow still runs (seen on Python 3.11: the stand was closed under
+        # the running workflow, which then failed on the closed port)
+        while not finished.is_set():
             try:
-                th.join(0.1)
+                finished.wait(0.1)
             except KeyboardInterrupt:
                 if not interrupted:
                     interrupted = True
