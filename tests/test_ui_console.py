@@ -391,14 +391,13 @@ def test_results_list_the_fallback_candidate_that_was_applied():
     from dataclasses import replace
 
     from agent.analysis import identify, simulate_relay, tune
-    from agent.ui.panes.results import ResultsPane
     from agent.workflows import LoopResult
 
     rec = simulate_relay([1], [1, 3, 3, 1], 0.0, 1.0, 0.0, 0.0, 0.01, 40.0)
     tuning = tune(identify(rec), controller="pid")
     lr = LoopResult("roll.rate", "roll", "rate", "pid", tuning=tuning)
     lr.chosen = replace(tuning.candidates[-1], rule="fallback_ms1.2")
-    rows = ResultsPane._rows(lr)
+    rows = lr.all_candidates()  # what the Results table lists
     assert rows[-1] is lr.chosen and len(rows) == len(tuning.candidates) + 1
     # the JSON record (autotune --json) names a chosen rule that is among its candidates
     d = lr.to_dict()
@@ -407,4 +406,4 @@ def test_results_list_the_fallback_candidate_that_was_applied():
     assert d["candidates"][-1]["kp"] == pytest.approx(lr.chosen.kp)
     assert all("output_noise" in c for c in d["candidates"])  # what each makes of the noise
     lr.chosen = tuning.candidates[0]
-    assert ResultsPane._rows(lr) == list(tuning.candidates)
+    assert lr.all_candidates() == list(tuning.candidates)

@@ -57,14 +57,8 @@ class ResultsPane(Vertical):
             return None
         table = self.query_one("#candidates", DataTable)
         row = table.cursor_row
-        cands = self._rows(lr)
+        cands = lr.all_candidates()
         return cands[row] if 0 <= row < len(cands) else None
-
-    @staticmethod
-    def _rows(lr) -> list:
-        """The candidates shown: the tuning's, plus the chosen one when it came from elsewhere
-        (the robust fallback tried after a missed step)."""
-        return lr.all_candidates()
 
     def on_select_changed(self, event: Select.Changed) -> None:
         if event.select.id == "results-loop":
@@ -140,7 +134,7 @@ class ResultsPane(Vertical):
         if lr.tuning is not None:
             rec = lr.tuning.recommended
             chosen = lr.chosen.rule if lr.chosen is not None else None
-            for c in self._rows(lr):
+            for c in lr.all_candidates():
                 tag = ("*" if c.rule == chosen else " ") + ("R" if c.rule == rec else " ")
                 p = c.predicted
                 table.add_row(f"{tag}{c.rule}", fmt(c.kp, 3), fmt(c.ki, 3), fmt(c.kd, 3),
@@ -149,7 +143,7 @@ class ResultsPane(Vertical):
             if keep_row is not None and 0 <= keep_row < table.row_count:
                 table.move_cursor(row=keep_row)
             elif chosen is not None:
-                names = [c.rule for c in self._rows(lr)]
+                names = [c.rule for c in lr.all_candidates()]
                 if chosen in names:
                     table.move_cursor(row=names.index(chosen))
         self._plot_candidate()
