@@ -196,6 +196,9 @@ class StandConsole(App):
             if self.kill_count == 1:
                 self.notify(f"KILLED by {info.get('origin')}: {info.get('reason')}",
                             severity="error", timeout=4)
+                # the strip may already say KILLED (the board's status can arrive before its
+                # kill event): redraw it now so the reason shows without waiting for the timer
+                self._tick()
             if run.current and run.query_one("#checklist").status_of(run.current) in (
                     "running", "tuned", "applied"):
                 run.loop_status(run.current, "killed")
