@@ -236,10 +236,10 @@ def test_kill_key_during_the_relay(tmp_path):
                            "the simulated board to report KILLED")
             await wait_for(pilot, lambda: app.busy is None, "the workflow to end")
             assert app.result is None or app.result.outcome in ("killed", "failed")
-            await pilot.pause(0.4)
-            assert app.stand.state == DeviceState.KILLED
-            top = screen_lines(app)[0]
-            assert "KILLED" in top and "host_operator" in top, top
+            await wait_for(pilot, lambda: app.stand.state == DeviceState.KILLED
+                           and "KILLED" in screen_lines(app)[0]
+                           and "host_operator" in screen_lines(app)[0],
+                           "the strip to show KILLED by host_operator")
             box = _text(app.query_one("#kill-box"))
             assert "host_operator" in box and "host" in box
             # nothing can be armed while killed
