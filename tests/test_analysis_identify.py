@@ -1,5 +1,6 @@
 """Identification from relay records: exact limit cycles, ultimate points, degenerate records."""
 
+import dataclasses
 import json
 
 import control
@@ -255,7 +256,6 @@ def test_slow_drift_over_a_long_record_does_not_bias_the_ultimate_point():
     # (a gust-like disturbance, periods 23 and 37 Tu) and 2 % noise: the free fit absorbs the
     # drift with its half-cosine columns (detrending, common practice, no source); without them
     # the same record gives Ku 15 % low (measured while writing this test).
-    import dataclasses
     rec, ku0, tu0 = _relay([1], [1, 3, 3, 1], periods=40, per_period=100, noise=0.02, seed=3)
     a = 4 / (np.pi * ku0)
     t = rec.t_s - rec.t_s[0]
@@ -270,8 +270,42 @@ def test_slow_drift_over_a_long_record_does_not_bias_the_ultimate_point():
 
 @pytest.mark.parametrize("at_rest, flag", [(False, 0.0), (True, 1.0)])
 def test_stated_start_decides_the_fit_variant(at_rest, flag):
-    import dataclasses
     rec, ku0, _ = _relay([1], [1, 3, 3, 1], periods=8)
     ident = identify(dataclasses.replace(rec, at_rest=at_rest))
     assert ident.model.extras["rest"] == flag
     assert ident.best_plant.ku == pytest.approx(ku0, rel=0.02)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_noisy_steady_relay_is_called_steady(seed):
+    # A steady limit cycle of 1/(s+1)^3 measured with noise at sigma/a = 0.11: single cycles
+    # scatter beyond the fixed 5 %/10 % tolerances, which used to call such a record unsettled
+    # ("did not settle", two cycles averaged). The tolerances now widen to what the noise
+    # explains (own measurement of the per-cycle scatter, agent/analysis/cycles.py).
+    rec = simulate_relay([1], [1, 3, 3, 1], 0.0, 1.0, 0.12, 0.0, 0.01, 200.0, noise_std=0.04,
+                         seed=seed)
+    ident = identify(rec)
+    cyc = ident.cycles
+    assert 0.08 < ident.noise_std / cyc.amplitude < 0.15
+    assert cyc.stationary
+    assert cyc.n_stationary >= cyc.n_cycles // 3, (cyc.n_stationary, cyc.n_cycles)
+    assert not any("settle" in w or "steady cycles" in w for w in ident.warnings), ident.warnings
+
+
+def test_noisy_record_with_a_relay_step_is_steady_only_after_it():
+    # The ramp raises the relay 2.5-fold: even with the noise-widened tolerances the cycles
+    # before the step must not count as steady (their amplitude is 60 % lower).
+    a = simulate_relay([1], [1, 3, 3, 1], 0.0, 0.4, 0.05, 0.0, 0.01, 80.0, noise_std=0.016,
+                       seed=7)
+    b = simulate_relay([1], [1, 3, 3, 1], 0.0, 1.0, 0.12, 0.0, 0.01, 120.0, noise_std=0.04,
+                       seed=8)
+    t = np.concatenate([a.t_s, b.t_s[1:] + a.t_s[-1]])
+    y = np.concatenate([a.y, b.y[1:]])
+    u = np.concatenate([a.u, b.u[1:]])
+    rec = dataclasses.replace(b, t_s=t, y=y, u=u, at_rest=False)
+    ident = identify(rec)
+    cyc = ident.cycles
+    join = len(a.t_s)
+    assert cyc.window[0] >= join, (cyc.window, join)
+    alone = identify(b).cycles
+    assert cyc.amplitude == pytest.approx(alone.amplitude, rel=0.05)
