@@ -409,3 +409,17 @@ def test_results_list_the_fallback_candidate_that_was_applied():
     assert all("output_noise" in c for c in d["candidates"])  # what each makes of the noise
     lr.chosen = tuning.candidates[0]
     assert lr.all_candidates() == list(tuning.candidates)
+
+
+@pytest.mark.parametrize("x, digits, shown", [
+    (1734.2, 3, "1734"),        # a telemetry rate: whole, not 1.73e+03
+    (0.16412, 2, "0.16"),
+    (458.366, 4, "458.4"),
+    (2.5e6, 3, "2.5e+06"),     # beyond a million: exponent again
+    (-1999.6, 3, "-2000"),
+    (None, 3, "-"),
+    (float("nan"), 3, "-"),
+])
+def test_numbers_for_people(x, digits, shown):
+    from agent.ui.widgets import fmt
+    assert fmt(x, digits) == shown

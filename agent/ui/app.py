@@ -275,6 +275,8 @@ class StandConsole(App):
 
     def plan_changed(self, plan) -> None:
         self.plan = plan
+        if not self.busy:  # a running plan keeps its checklist
+            self.main.query_one(RunPane).show_plan(plan)
 
     # ------------------------------------------------------------------ connect / disconnect
     def _claim(self, what: str) -> bool:

@@ -27,7 +27,9 @@ def fmt(x, digits: int = 4, unit: str = "") -> str:
         return str(x)
     if not math.isfinite(v):
         return "-"
-    return f"{v:.{digits}g}" + (f" {unit}" if unit else "")
+    # whole numbers up to a million read better in full (1734 tel/s, not 1.73e+03)
+    text = f"{v:.0f}" if 10 ** digits <= abs(v) < 1e6 else f"{v:.{digits}g}"
+    return text + (f" {unit}" if unit else "")
 
 
 def thin(x: np.ndarray, *ys: np.ndarray, points: int = 300):
@@ -79,7 +81,7 @@ class Checklist(Static):
              "skipped": "[-]"}
 
     def __init__(self, **kw):
-        super().__init__("(no plan yet)", **kw)
+        super().__init__("(no plan yet: make one on the Plan tab, F4)", **kw)
         self.items: list[tuple[str, str]] = []
 
     def set_loops(self, keys: Iterable[str]) -> None:
@@ -99,7 +101,7 @@ class Checklist(Static):
             style = {"running": "bold", "verified": "green", "failed": "red", "killed": "bold red",
                      "rolled_back": "yellow"}.get(s, "")
             t.append(f"{self.MARKS.get(s, '[?]')} {i}. {k:<11} {s}\n", style=style)
-        self.update(t if self.items else "(no plan yet)")
+        self.update(t if self.items else "(no plan yet: make one on the Plan tab, F4)")
 
 
 class KeyValues(Static):

@@ -104,7 +104,9 @@ class ResultsPane(Vertical):
             m = ident.model
             rows += [("model", m.kind)]
             rows += [(f"  {k}", fmt(v)) for k, v in m.params.items()]
-            rows += [("  L/(L+T)", fmt(m.normalized_delay, 3)), ("  rmse", fmt(m.rmse, 3))]
+            # the normalised dead time is L/(L+T) for a lag; an integrating loop has none
+            rows += [("  tau", "- (integrating)" if m.integrating else
+                      fmt(m.normalized_delay, 3)), ("  rmse", fmt(m.rmse, 3))]
             for w in ident.warnings:
                 rows.append(("warning", w))
         relay = lr.relay or {}

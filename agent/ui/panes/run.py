@@ -51,6 +51,10 @@ class RunPane(Vertical):
         self.app.clear_kill()
 
     # ------------------------------------------------------------------ updates from the app
+    def show_plan(self, plan) -> None:
+        """The loops of a newly validated plan, all pending, before it is started."""
+        self.query_one("#checklist", Checklist).set_loops(lp.key for lp in plan.loops)
+
     def begin(self, plan) -> None:
         self.query_one("#checklist", Checklist).set_loops(lp.key for lp in plan.loops)
         self.query_one("#run-progress", ProgressBar).update(progress=0.0)
