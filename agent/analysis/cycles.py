@@ -193,8 +193,9 @@ def detect_cycles(t_s: np.ndarray, y: np.ndarray, u: np.ndarray, n_stable: int =
             while j > 0 and ok(j - 1):
                 j -= 1
     n_stat = n_cycles - j
-    # a tighter suffix (1 % period, 3 % amplitude) for whole-period Fourier averages: cycles
-    # still growing after start-up would otherwise leak a transient into the harmonics
+    # a tighter suffix (1 % period, 3 % amplitude, or what the noise explains) for whole-period
+    # Fourier averages: cycles still growing after start-up would otherwise leak a transient
+    # into the harmonics
     jt = n_cycles
     while jt > 0 and abs(periods[jt - 1] / ref_p - 1) <= tight_p and \
             abs(amps[jt - 1] / ref_a - 1) <= tight_a:

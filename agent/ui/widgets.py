@@ -80,8 +80,10 @@ class Checklist(Static):
              "verified": "[v]", "rolled_back": "[<]", "failed": "[x]", "killed": "[!]",
              "skipped": "[-]"}
 
+    EMPTY = "(no plan yet: make one on the Plan tab, F4)"
+
     def __init__(self, **kw):
-        super().__init__("(no plan yet: make one on the Plan tab, F4)", **kw)
+        super().__init__(self.EMPTY, **kw)
         self.items: list[tuple[str, str]] = []
 
     def set_loops(self, keys: Iterable[str]) -> None:
@@ -101,7 +103,7 @@ class Checklist(Static):
             style = {"running": "bold", "verified": "green", "failed": "red", "killed": "bold red",
                      "rolled_back": "yellow"}.get(s, "")
             t.append(f"{self.MARKS.get(s, '[?]')} {i}. {k:<11} {s}\n", style=style)
-        self.update(t if self.items else "(no plan yet: make one on the Plan tab, F4)")
+        self.update(t if self.items else self.EMPTY)
 
 
 class KeyValues(Static):

@@ -56,7 +56,7 @@ class RunPane(Vertical):
         self.query_one("#checklist", Checklist).set_loops(lp.key for lp in plan.loops)
 
     def begin(self, plan) -> None:
-        self.query_one("#checklist", Checklist).set_loops(lp.key for lp in plan.loops)
+        self.show_plan(plan)
         self.query_one("#run-progress", ProgressBar).update(progress=0.0)
         self.current, self.relay = None, {}
         self.query_one("#run-log", RichLog).write("-- run started: "
