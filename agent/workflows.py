@@ -92,8 +92,7 @@ class LoopResult:
         """The tuning's candidates, plus the chosen one when it came from elsewhere (the robust
         fallback tried after a missed step), so that ``chosen`` always names one of them."""
         cands = list(self.tuning.candidates) if self.tuning is not None else []
-        if self.chosen is not None and all(c is not self.chosen for c in cands) \
-                and self.chosen.rule not in {c.rule for c in cands}:
+        if self.chosen is not None and self.chosen.rule not in {c.rule for c in cands}:
             cands.append(self.chosen)
         return cands
 
