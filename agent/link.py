@@ -39,12 +39,7 @@ class ForeignVersion:
     minor: int
 
 
-class LinkError(Exception):
-    """The serial link could not be opened or was lost; the text says what to do."""
-
-
-class LinkTimeout(LinkError):
-    """No reply to a request after all retries."""
+from .errors import LinkError, LinkTimeout  # noqa: E402  (re-exported: agent.link.LinkError)
 
 
 @dataclass

@@ -68,8 +68,7 @@ def known_rules() -> tuple[str, ...]:
     return tuple(names)
 
 
-class PlanError(ValueError):
-    """The plan is not valid; the text names the key, what it holds and what is expected."""
+from .errors import PlanError  # noqa: E402  (re-exported: agent.plan.PlanError)
 
 
 @dataclass(frozen=True)

@@ -16,10 +16,11 @@ from protocol.messages import (Axis, DeviceState, Loop, PROTOCOL_MAJOR, PROTOCOL
                                RefuseCode)
 
 from . import __version__
+from .errors import DeviceError
 from .link import ForeignVersion, Link, LinkError
 
 
-class SessionError(Exception):
+class SessionError(DeviceError):
     """A problem with the board or the request; the text says what and what to do."""
 
 

@@ -20,12 +20,13 @@ from protocol import messages as m
 from protocol.messages import DeviceState, EventKind, KillReason
 
 from . import __version__
+from .errors import WorkflowError
 from .link import Link, LinkError
 from .safety import Limits, SafetyMonitor, Trip
 from .session import Session, SessionError
 
 
-class KillTripped(Exception):
+class KillTripped(WorkflowError):
     """A kill happened (device or host); the workflow stopped. ``info`` says why."""
 
     def __init__(self, info: dict):

@@ -41,12 +41,7 @@ SAMPLING_DELAY_TICKS = 1.5  # zero-order hold (1/2 tick) + output applied on the
 GAIN_KEYS = ("kp", "ki", "kd", "tf", "b", "i_limit")
 
 
-class WorkflowError(Exception):
-    """The workflow could not complete; the text says why and what to try."""
-
-
-class Cancelled(Exception):
-    """The operator stopped the run (not a kill)."""
+from .errors import Cancelled, WorkflowError  # noqa: E402  (re-exported)
 
 
 @dataclass(frozen=True)

@@ -24,8 +24,7 @@ import numpy as np
 __all__ = ["RecordError", "RelayRecord", "validate_record"]
 
 
-class RecordError(ValueError):
-    """An experiment record that cannot be analysed; ``str(e)`` says why and what to do."""
+from ..errors import RecordError  # noqa: E402  (re-exported: agent.analysis.RecordError)
 
 
 @dataclass(frozen=True)

@@ -12,12 +12,7 @@ import sys
 from agent import __version__
 
 
-class UserError(Exception):
-    """A problem the user can fix; printed without a traceback, exit code ``code``."""
-
-    def __init__(self, message: str, code: int = 2):
-        super().__init__(message)
-        self.code = code
+from agent.errors import UserError  # noqa: E402  (re-exported: agent.cli.UserError)
 
 
 def _cmd_version(args) -> int:

@@ -40,8 +40,7 @@ TELEMETRY_HEADER = ",".join(COLUMNS) + "\n"
 _SAFE_NAME = re.compile(r"^[A-Za-z0-9][A-Za-z0-9._-]{0,99}$")
 
 
-class LogbookError(Exception):
-    """A logbook problem a person can act on; the message says what, why and what to do."""
+from ..errors import LogbookError  # noqa: E402  (re-exported)
 
 
 class LogbookVersionError(LogbookError):
