@@ -8,6 +8,7 @@ it never arms anything.
 
 from __future__ import annotations
 
+import enum
 import threading
 import time
 from collections import deque
@@ -24,6 +25,26 @@ from .errors import WorkflowError
 from .link import Link, LinkError
 from .safety import Limits, SafetyMonitor, Trip
 from .session import Session, SessionError
+
+
+class Notice(enum.StrEnum):
+    """What a stand listener is told: ``listener(kind: Notice, payload)``.
+
+    TELEMETRY  payload: the Telemetry message (reader thread, every sample)
+    EVENT      payload: the board's Event message
+    KILL       payload: the kill's description dict (origin, reason, axis, value, threshold,
+               text, host_time_s); see agent.operations.describe_kill
+    STATE      payload: "armed" | "disarmed"
+    LOOP       payload: {"key": "roll.rate", "status": LoopStatus value}
+    WARNING    payload: a line for people (a log write failed, ...)
+    """
+
+    TELEMETRY = "telemetry"
+    EVENT = "event"
+    KILL = "kill"
+    STATE = "state"
+    LOOP = "loop"
+    WARNING = "warning"
 
 
 class KillTripped(WorkflowError):
@@ -147,7 +168,9 @@ class Stand:
     def state(self) -> DeviceState:
         return self.session.state
 
-    def emit(self, kind: str, payload: Any) -> None:
+    def emit(self, kind: Notice | str, payload: Any) -> None:
+        """Tell every listener (on the calling thread; a failing listener is ignored)."""
+        kind = Notice(kind)
         for fn in tuple(self.listeners):
             try:
                 fn(kind, payload)
@@ -169,7 +192,7 @@ class Stand:
                 fields.setdefault("host_time_s", time.time())
                 self.log.event(kind, **fields)
             except Exception as exc:  # a full disk must not stop a kill; say it once
-                self.emit("warning", f"log write failed: {exc}")
+                self.emit(Notice.WARNING, f"log write failed: {exc}")
 
     # ------------------------------------------------------------------ data flow
     def _on_telemetry(self, host_t: float, tel: m.Telemetry) -> None:
@@ -183,8 +206,8 @@ class Stand:
                 exp.append(host_t + self._wall_offset, tel)  # the log keeps Unix time
             except Exception as exc:
                 self.experiment_log = None
-                self.emit("warning", f"telemetry log write failed: {exc}")
-        self.emit("telemetry", tel)
+                self.emit(Notice.WARNING, f"telemetry log write failed: {exc}")
+        self.emit(Notice.TELEMETRY, tel)
 
     def _on_event(self, host_t: float, ev: m.Event) -> None:
         fields = {"device_time_us": ev.time_us, "event": EventKind(ev.kind).name.lower()
@@ -198,10 +221,10 @@ class Stand:
             if self.monitor is not None:
                 self.monitor.active = False
             self.log_event("kill", **info, device_time_us=ev.time_us)
-            self.emit("kill", info)
+            self.emit(Notice.KILL, info)
         else:
             self.log_event("device_event", **fields)
-        self.emit("event", ev)
+        self.emit(Notice.EVENT, ev)
 
     def _on_host_trip(self, trip: Trip) -> None:
         info = self._kill_info(trip.reason, trip.axis, trip.value, trip.threshold, "", "host")
@@ -209,14 +232,14 @@ class Stand:
         self.kills.append(info)
         self._kill_event.set()
         self.log_event("kill", **info)
-        self.emit("kill", info)
+        self.emit(Notice.KILL, info)
 
     def _on_lost(self, reason: str) -> None:
         info = self._kill_info(KillReason.HOST_LINK, 255, 0.0, 0.0, reason, "host")
         self.kills.append(info)
         self._kill_event.set()
         self.log_event("kill", **info)
-        self.emit("kill", info)
+        self.emit(Notice.KILL, info)
 
     @staticmethod
     def _kill_info(reason, axis, value, threshold, text, origin) -> dict:
@@ -277,7 +300,7 @@ class Stand:
         if self.monitor is not None:
             self.monitor.active = False
         self.log_event("armed")
-        self.emit("state", "armed")
+        self.emit(Notice.STATE, "armed")
 
     def disarm(self) -> None:
         if self.monitor is not None:
@@ -286,7 +309,7 @@ class Stand:
             self.session.disarm()
         finally:
             self.log_event("disarmed")
-            self.emit("state", "disarmed")
+            self.emit(Notice.STATE, "disarmed")
 
     def close(self, outcome: str = "closed") -> None:
         if self._closed:

@@ -8,6 +8,7 @@ columns the reader returns from disk (same dtypes, floats rounded to f32 exactly
 
 from __future__ import annotations
 
+from dataclasses import dataclass, fields
 from typing import Any, Iterable
 
 import numpy as np
@@ -16,6 +17,79 @@ from .format import COLUMNS, INT_COLUMNS, LogbookError
 
 ANALYSIS_INPUT_KEYS = ("axis", "t_start_us", "t_end_us", "amplitude", "hysteresis", "bias",
                        "setpoint", "sample_time_s", "sampling_delay_s")
+
+
+@dataclass(frozen=True)
+class AnalysisInput:
+    """Exactly the window and parameters an analysis reads (the logbook's ``analysis_input``).
+
+    The relay workflow builds one; the logbook stores ``to_dict()`` in the experiment's
+    results.json; the offline re-analysis reads it back with ``from_dict``, so both build the
+    same record and the same tuning arguments. Times are the board's (µs, inclusive).
+    ``integrating`` is the host's prior (True for angle and height loops, None: unknown);
+    ``at_rest`` False when the window starts mid-oscillation (None in older logs: the fit
+    decides); ``max_output_noise`` bounds what measurement noise may do to the output (None:
+    no bound); ``loop`` None in older logs (every level of the axis).
+    """
+
+    axis: int
+    t_start_us: int
+    t_end_us: int
+    amplitude: float
+    hysteresis: float
+    bias: float
+    setpoint: float
+    sample_time_s: float
+    sampling_delay_s: float
+    loop: int | None = None
+    controller: str | None = None
+    ms_target: float | None = None
+    integrating: bool | None = None
+    at_rest: bool | None = None
+    output_limit: float | None = None
+    max_output_noise: float | None = None
+
+    def __post_init__(self) -> None:
+        if not self.t_end_us >= self.t_start_us:
+            raise LogbookError(f"analysis input window ends ({self.t_end_us} us) before it "
+                               f"starts ({self.t_start_us} us)")
+        if not self.sample_time_s > 0:
+            raise LogbookError(f"analysis input sample_time_s must be > 0, got "
+                               f"{self.sample_time_s!r}")
+
+    def to_dict(self) -> dict:
+        """The logbook form (every key, None where unknown)."""
+        return {f.name: getattr(self, f.name) for f in fields(self)}
+
+    @classmethod
+    def from_dict(cls, d: "dict | AnalysisInput") -> "AnalysisInput":
+        """Read the logbook form; unknown keys are ignored (newer logs), missing required ones
+        raise LogbookError naming them."""
+        if isinstance(d, AnalysisInput):
+            return d
+        if not isinstance(d, dict):
+            raise LogbookError("the analysis input must be a dict naming the window and relay "
+                               f"parameters, got {type(d).__name__}.")
+        missing = [k for k in ANALYSIS_INPUT_KEYS if k not in d]
+        if missing:
+            raise LogbookError(f"the analysis input lacks {missing}; it must name "
+                               f"{list(ANALYSIS_INPUT_KEYS)}.")
+        try:
+            kw: dict[str, Any] = {k: int(d[k]) for k in ("axis", "t_start_us", "t_end_us")}
+            kw.update({k: float(d[k]) for k in ("amplitude", "hysteresis", "bias", "setpoint",
+                                               "sample_time_s", "sampling_delay_s")})
+            for k in ("ms_target", "output_limit", "max_output_noise"):
+                kw[k] = None if d.get(k) is None else float(d[k])
+            kw["loop"] = None if d.get("loop") is None else int(d["loop"])
+            kw["controller"] = None if d.get("controller") is None else str(d["controller"])
+            for k in ("integrating", "at_rest"):
+                v = d.get(k)
+                if v is not None and not isinstance(v, bool):
+                    raise LogbookError(f"analysis input {k} must be true, false or null, got {v!r}")
+                kw[k] = v
+        except (TypeError, ValueError) as exc:
+            raise LogbookError(f"the analysis input holds a value of the wrong type: {exc}") from None
+        return cls(**kw)
 
 
 def columns_from_telemetry(samples: Iterable[tuple[float, Any]]) -> dict[str, np.ndarray]:
@@ -46,30 +120,28 @@ def columns_from_telemetry(samples: Iterable[tuple[float, Any]]) -> dict[str, np
     return out
 
 
-def tune_kwargs(analysis_input: dict) -> dict:
+def tune_kwargs(analysis_input: "AnalysisInput | dict") -> dict:
     """Keyword arguments for ``agent.analysis.tune`` named by an analysis input (the keys it
-    does not name keep tune's own defaults)."""
-    ai = analysis_input
+    does not name keep tune's own defaults). A dict needs only ``sample_time_s``."""
+    if isinstance(analysis_input, dict) and not set(ANALYSIS_INPUT_KEYS) <= analysis_input.keys():
+        ai = dict(analysis_input)  # a partial dict: tuning arguments only
+    else:
+        ai = AnalysisInput.from_dict(analysis_input).to_dict()
     kw: dict = {"sample_time_s": float(ai["sample_time_s"])}
-    if ai.get("controller") is not None:
-        kw["controller"] = str(ai["controller"])
-    if ai.get("ms_target") is not None:
-        kw["ms_target"] = float(ai["ms_target"])
-    if ai.get("output_limit") is not None:
-        kw["output_limit"] = float(ai["output_limit"])
-    if ai.get("max_output_noise") is not None:
-        kw["max_output_noise"] = float(ai["max_output_noise"])
+    for key, conv in (("controller", str), ("ms_target", float), ("output_limit", float),
+                      ("max_output_noise", float)):
+        if ai.get(key) is not None:
+            kw[key] = conv(ai[key])
     return kw
 
 
-def window_mask(columns: dict[str, np.ndarray], analysis_input: dict) -> np.ndarray:
+def window_mask(columns: dict[str, np.ndarray], analysis_input: "AnalysisInput | dict") -> np.ndarray:
     """Rows of the analysed axis (and loop, when named) inside [t_start_us, t_end_us]."""
-    ai = analysis_input
+    ai = AnalysisInput.from_dict(analysis_input)
     t = columns["time_us"]
-    mask = (columns["axis"] == int(ai["axis"])) & (t >= int(ai["t_start_us"])) \
-        & (t <= int(ai["t_end_us"]))
-    if ai.get("loop") is not None:
-        mask &= columns["loop"] == int(ai["loop"])
+    mask = (columns["axis"] == ai.axis) & (t >= ai.t_start_us) & (t <= ai.t_end_us)
+    if ai.loop is not None:
+        mask &= columns["loop"] == ai.loop
     return mask
 
 
@@ -82,8 +154,7 @@ def relay_record_from_rows(columns: dict[str, np.ndarray], analysis_input: dict)
         Long telemetry columns (from :func:`columns_from_telemetry` online or
         :class:`ExperimentRecord.columns` offline).
     analysis_input
-        ``{"axis", "t_start_us", "t_end_us", "amplitude", "hysteresis", "bias", "setpoint",
-        "sample_time_s", "sampling_delay_s", ...}``; optional ``"loop"`` restricts the rows to
+        An :class:`AnalysisInput`, or its logbook dict form; a ``loop`` restricts the rows to
         that loop level too.
 
     Returns
@@ -99,20 +170,13 @@ def relay_record_from_rows(columns: dict[str, np.ndarray], analysis_input: dict)
     """
     from agent.analysis.records import RelayRecord
 
-    if not isinstance(analysis_input, dict):
-        raise LogbookError("the analysis input must be a dict naming the window and relay "
-                           f"parameters, got {type(analysis_input).__name__}.")
-    missing = [k for k in ANALYSIS_INPUT_KEYS if k not in analysis_input]
-    if missing:
-        raise LogbookError(f"the analysis input lacks {missing}; it must name "
-                           f"{list(ANALYSIS_INPUT_KEYS)}.")
-    mask = window_mask(columns, analysis_input)
+    ai = AnalysisInput.from_dict(analysis_input)
+    mask = window_mask(columns, ai)
     t_us = columns["time_us"][mask]
     if t_us.size == 0:
-        ai = analysis_input
         raise LogbookError(
-            f"no telemetry rows of axis {ai['axis']} between device times {ai['t_start_us']} us "
-            f"and {ai['t_end_us']} us; the record was cut short or the window is wrong.")
+            f"no telemetry rows of axis {ai.axis} between device times {ai.t_start_us} us "
+            f"and {ai.t_end_us} us; the record was cut short or the window is wrong.")
     order = np.argsort(t_us, kind="stable")
     t_us = t_us[order]
     keep = np.ones(t_us.size, dtype=bool)
@@ -121,9 +185,7 @@ def relay_record_from_rows(columns: dict[str, np.ndarray], analysis_input: dict)
     t_s = t_us[keep].astype(np.float64) * 1e-6
     y = np.asarray(columns["measurement"][mask][idx], dtype=np.float64)
     u = np.asarray(columns["output"][mask][idx], dtype=np.float64)
-    ai = analysis_input
-    return RelayRecord(t_s=t_s, y=y, u=u, setpoint=float(ai["setpoint"]),
-                       amplitude=float(ai["amplitude"]), hysteresis=float(ai["hysteresis"]),
-                       bias=float(ai["bias"]), sample_time_s=float(ai["sample_time_s"]),
-                       sampling_delay_s=float(ai["sampling_delay_s"]),
-                       integrating=ai.get("integrating"), at_rest=ai.get("at_rest"))
+    return RelayRecord(t_s=t_s, y=y, u=u, setpoint=ai.setpoint, amplitude=ai.amplitude,
+                       hysteresis=ai.hysteresis, bias=ai.bias, sample_time_s=ai.sample_time_s,
+                       sampling_delay_s=ai.sampling_delay_s, integrating=ai.integrating,
+                       at_rest=ai.at_rest)
