@@ -1,20 +1,20 @@
-"""Stand commands: ports, tune, autotune, demo. Thin shells over agent.workflows."""
+"""Stand commands: ports, tune, autotune, demo, settings. Thin shells over agent.operations:
+they parse, confirm with the operator, render progress and results, and map outcomes to exit
+codes; every action on the board is an operations call."""
 
 from __future__ import annotations
 
 import json
 import math
-import os
 import sys
-import threading
-import time
-from dataclasses import replace
 from pathlib import Path
 
 from rich.console import Console
 from rich.progress import BarColumn, Progress as RichProgress, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
+from agent.errors import (DeviceError, ExitCode, LinkError, LogbookError, PlanError,
+                          TetherloopError)
 from protocol.messages import Capability, KillReason
 
 from . import UserError
@@ -51,113 +51,108 @@ def cmd_ports(args) -> int:
 # ------------------------------------------------------------------------------ shared runner
 
 
-def _confirm(args, con: Console) -> dict:
+def _confirm(args, con: Console, simulated: bool = False):
+    """Show the cautions and get the operator's confirmation; the record says truthfully how."""
+    from agent.operations import Confirmation, ConfirmedBy
     from agent.safety import caution_text, confirm_cautions
+    if simulated:
+        con.print("[bold]SAFETY[/] — the board is the built-in simulation: no hardware is "
+                  "driven, so no confirmation is asked. On a real stand, before arming:\n"
+                  + caution_text())
+        return Confirmation(ConfirmedBy.SIMULATED)
     if getattr(args, "confirm_safe", False):
         con.print("[bold]SAFETY[/] — confirmed with --confirm-safe (logged):\n" + caution_text())
-        return {"cautions": "confirmed by --confirm-safe", "time": time.time()}
+        return Confirmation(ConfirmedBy.FLAG)
     if not sys.stdin.isatty():
         raise UserError("arming needs the operator's confirmation of the safety cautions: run "
                         "interactively, or pass --confirm-safe in a scripted run (it is logged)")
-    ok = confirm_cautions(lambda q: con.input(q), lambda s: con.print(s))
-    if not ok:
-        raise UserError("not confirmed: nothing was armed", code=1)
-    return {"cautions": "confirmed interactively", "time": time.time()}
-
-
-def _logbook(args):
-    from agent.logbook import Logbook, LogbookError
-    try:
-        return Logbook(getattr(args, "log_dir", None))
-    except LogbookError as exc:
-        raise UserError(str(exc)) from None
+    if not confirm_cautions(lambda q: con.input(q), lambda s: con.print(s)):
+        raise UserError("not confirmed: nothing was armed", code=ExitCode.DECLINED)
+    return Confirmation(ConfirmedBy.TYPED)
 
 
 def _connect(port, args, mock=None):
-    from agent.link import LinkError
-    from agent.session import SessionError
-    from agent.stand import Stand
+    from agent import operations
     try:
-        return Stand.connect(port, baudrate=args.baud, mock=mock)
-    except (LinkError, SessionError) as exc:
-        if mock is not None:
-            mock.stop()
+        return operations.connect(port, getattr(args, "baud", 921600), mock=mock)
+    except (LinkError, DeviceError) as exc:
         raise UserError(str(exc)) from None
 
 
-def run_on_stand(args, stand, plan, work, con: Console):
-    """Confirm, open the log, run ``work(stand, progress, stop)`` in a worker thread while the
-    main thread watches for Ctrl-C (which kills at once), and close everything."""
-    from agent.logbook import LogbookError
-    from agent.workflows import Progress
-    confirmations = _confirm(args, con)
+def _check_plan(stand, plan) -> None:
+    from agent import operations
     try:
-        stand.open_log(_logbook(args), plan.as_dict(), confirmations)
-    except LogbookError as exc:
-        stand.close("log could not be opened")
+        operations.check_plan(stand, plan)
+    except PlanError as exc:
+        operations.close(stand, "plan rejected")
         raise UserError(f"{exc} (nothing was armed)") from None
-    stand.confirmed = True
-    stand.log_event("cautions_confirmed", **confirmations)
+
+
+def run_on_stand(args, stand, plan, work, con: Console, simulated: bool = False):
+    """Confirm, open the session, run ``work(stand, progress, stop)`` as a background job while
+    this thread watches for Ctrl-C (which kills at once). Returns (job, interrupted)."""
+    import threading
+
+    from agent import operations
+    from agent.workflows import Progress, Stage
+    confirmation = _confirm(args, con, simulated)
+    try:
+        operations.open_session(stand, plan, confirmation, getattr(args, "log_dir", None))
+    except (LogbookError, OSError) as exc:
+        operations.close(stand, "log could not be opened")
+        raise UserError(f"{exc} (nothing was armed)") from None
     stop = threading.Event()
-    box: dict = {}
     bar = RichProgress(TextColumn("{task.description}"), BarColumn(), TimeElapsedColumn(),
                        console=con, transient=True, disable=getattr(args, "quiet", False))
     task = bar.add_task("starting", total=1.0)
-    last_stage = [None]
+    last = [None]
+    shown = (Stage.ANALYSIS, Stage.APPLY, Stage.VERIFY, Stage.ROLLBACK, Stage.NOISE, Stage.INFO,
+             Stage.DONE)
 
     def progress(p: Progress) -> None:
         if p.fraction is not None:
             bar.update(task, completed=p.fraction)
         bar.update(task, description=p.message[:70])
-        if p.stage != "relay" and (p.stage, p.message) != last_stage[0]:
-            last_stage[0] = (p.stage, p.message)
-            if p.stage in ("analysis", "apply", "verify", "rollback", "noise", "info", "done"):
-                bar.console.print(f"[dim]{p.stage:>8}[/] {p.message}")
+        if p.stage in shown and (p.stage, p.message) != last[0]:
+            last[0] = (p.stage, p.message)
+            bar.console.print(f"[dim]{p.stage:>8}[/] {p.message}")
 
-    stand.listeners.append(lambda kind, payload: kind == "kill" and bar.console.print(
-        f"[bold red]KILL[/] {payload.get('origin')}: {payload.get('reason')} "
-        f"axis {payload.get('axis_name')} value {payload.get('value'):.4g} "
-        f"threshold {payload.get('threshold'):.4g} {payload.get('text', '')}"))
+    def on_notice(kind, payload) -> None:
+        if kind == "kill":
+            bar.console.print(f"[bold red]{operations.describe_kill(payload)}[/]")
 
-    finished = threading.Event()
-
-    def worker():
-        try:
-            box["result"] = work(stand, progress, stop)
-        except BaseException as exc:  # reported by the main thread
-            box["error"] = exc
-        finally:
-            finished.set()
-
-    th = threading.Thread(target=worker, name="tetherloop-workflow", daemon=True)
+    stand.listeners.append(on_notice)
+    job = operations.Job(lambda: work(stand, progress, stop))
     interrupted = False
     with bar:
-        th.start()
-        # an Event, not Thread.join: a Ctrl-C that interrupts join() can leave is_alive()
-        # False while the workflow still runs (seen on Python 3.11: the stand was closed under
-        # the running workflow, which then failed on the closed port)
-        while not finished.is_set():
+        job.start()
+        while not job.done:
             try:
-                finished.wait(0.1)
+                job.wait(0.1)
             except KeyboardInterrupt:
                 if not interrupted:
                     interrupted = True
-                    stand.kill(KillReason.HOST_OPERATOR)
+                    try:
+                        operations.kill(stand, KillReason.HOST_OPERATOR)
+                    except LinkError as exc:
+                        bar.console.print(f"[bold red]KILL could not be sent ({exc}): use the "
+                                          "hardware kill now.[/]")
                     stop.set()
                     bar.console.print("[bold red]KILL sent (Ctrl-C).[/] Waiting for the board...")
-    return box, interrupted
+    return job, interrupted
 
 
-def _finish(stand, box, interrupted, con, args):
-    from agent.workflows import StandResult
-    err = box.get("error")
-    result = box.get("result")
-    outcome = "killed" if interrupted else (getattr(result, "outcome", None) or
+def _finish(stand, job, interrupted):
+    """Close the stand with the run's outcome; re-raise what is not an Exception."""
+    from agent import operations
+    err = job.error
+    result = job.result
+    outcome = "killed" if interrupted else (str(getattr(result, "outcome", "")) or
                                             ("error" if err else "ok"))
-    stand.close(outcome)
+    operations.close(stand, outcome)
     if err is not None and not isinstance(err, Exception):
         raise err
-    return result, err, outcome
+    return result, err
 
 
 def _summary_tables(loops) -> list[Table]:
@@ -175,7 +170,7 @@ def _summary_tables(loops) -> list[Table]:
         vtext = ("pass" if ver.get("passed") else "FAIL") if ver else "-"
         os_text = f"{meas['overshoot']:.0%}" if meas.get("overshoot") is not None else "-"
         ch = lr.chosen
-        ident.add_row(lr.key, lr.status, _g(d.get("ultimate_gain")),
+        ident.add_row(lr.key, str(lr.status), _g(d.get("ultimate_gain")),
                       _g(d.get("ultimate_period_s")), (d.get("model") or {}).get("kind", "-"),
                       d.get("ultimate_method", "-"))
         gains.add_row(lr.key, ch.rule if ch else "-", _g(ch.kp if ch else None),
@@ -190,45 +185,48 @@ def _g(x) -> str:
     return f"{x:.4g}"
 
 
+def _failure_code(err: BaseException) -> int:
+    from agent.stand import KillTripped
+    if isinstance(err, KillTripped):
+        return int(ExitCode.KILLED)
+    return int(ExitCode.FAILED)
+
+
 # ------------------------------------------------------------------------------ tune / autotune
 
 
 def cmd_tune(args) -> int:
-    from agent.plan import LoopPlan, Plan, PlanError, check_against_device, known_rules
-    from agent.workflows import tune_loop
+    from agent import operations
+    from agent.plan import LoopPlan, Plan, known_rules
+    from agent.workflows import LoopStatus
     con = _console(args)
     if args.rule != "recommended" and args.rule not in known_rules():
-        raise UserError(f"unknown rule {args.rule!r}; expected recommended or one of "
+        raise UserError(f"--rule {args.rule!r}: unknown rule; expected recommended or one of "
                         f"{', '.join(known_rules())}")
-    lp = LoopPlan(args.axis, args.loop, args.controller, args.rule, args.ms)
-    plan = Plan(loops=(lp,), apply=args.apply or args.verify, verify=args.verify)
     if (args.axis == "heave" and args.loop == "angle") or (args.axis != "heave" and args.loop == "heave"):
         raise UserError(f"axis {args.axis!r} has no {args.loop!r} loop: rotation axes have rate "
                         "and angle loops, the heave axis has rate and heave")
-    stand = _connect(args.port, args)
     try:
-        check_against_device(plan, stand.info.axes)
+        lp = LoopPlan(args.axis, args.loop, args.controller, args.rule, args.ms)
+        plan = Plan(loops=(lp,), apply=args.apply or args.verify, verify=args.verify)
     except PlanError as exc:
-        stand.close("plan rejected")
         raise UserError(str(exc)) from None
-
-    def work(stand, progress, stop):
-        stand.monitor.limits = plan.limits
-        stand.arm()
-        try:
-            return tune_loop(stand, lp, plan, progress, stop)
-        finally:
-            if not stand.killed:
-                stand.disarm()
-
-    box, interrupted = run_on_stand(args, stand, plan, work, con)
-    result, err, outcome = _finish(stand, box, interrupted, con, args)
+    stand = _connect(args.port, args)
+    _check_plan(stand, plan)
+    job, interrupted = run_on_stand(
+        args, stand, plan, lambda s, progress, stop: operations.tune_one(s, lp, plan, progress,
+                                                                         stop), con)
+    result, err = _finish(stand, job, interrupted)
     session_path = str(stand.log.path) if stand.log else None
+    if interrupted and err is not None:
+        err = err if isinstance(err, TetherloopError) else None
     if err is not None:
         con.print(f"[bold red]tune failed:[/] {err}")
         if args.json:
             print(json.dumps({"error": str(err), "kills": stand.kills, "session": session_path}))
-        return 3
+        return _failure_code(err)
+    if result is None:
+        return int(ExitCode.KILLED)
     if args.json:
         d = result.to_dict(session_path)
         d["kills"] = stand.kills
@@ -237,12 +235,14 @@ def cmd_tune(args) -> int:
         for t in _summary_tables([result]):
             con.print(t)
         con.print(f"log: {session_path}")
-    return 0 if result.status in ("tuned", "applied", "verified") else 4
+    if result.status == LoopStatus.ROLLBACK_FAILED:
+        return int(ExitCode.ROLLBACK_FAILED)
+    return int(ExitCode.OK if LoopStatus(result.status).good else ExitCode.PARTIAL)
 
 
-def cmd_autotune(args, *, mock=None, port=None) -> int:
-    from agent.plan import PlanError, check_against_device, default_plan, load_plan
-    from agent.workflows import autotune
+def cmd_autotune(args, *, mock=None, port=None, simulated: bool = False) -> int:
+    from agent import operations
+    from agent.plan import default_plan, load_plan
     con = _console(args)
     plan = None
     if getattr(args, "plan", None):
@@ -255,31 +255,28 @@ def cmd_autotune(args, *, mock=None, port=None) -> int:
     stand = _connect(port or args.port, args, mock=mock)
     if plan is None:
         plan = default_plan(stand.info.axes, stand.session.values)
-    try:
-        check_against_device(plan, stand.info.axes)
-    except PlanError as exc:
-        stand.close("plan rejected")
-        raise UserError(str(exc)) from None
+    _check_plan(stand, plan)
     con.print(f"board [bold]{stand.info.device_id}[/] firmware {stand.info.firmware_version}, "
               f"protocol {stand.info.protocol}, loop {stand.info.loop_rate_hz} Hz; "
               f"{len(plan.loops)} loops: {', '.join(lp.key for lp in plan.loops)}")
-    box, interrupted = run_on_stand(args, stand, plan,
-                                    lambda s, p, stop: autotune(s, plan, p, stop), con)
-    result, err, outcome = _finish(stand, box, interrupted, con, args)
+    job, interrupted = run_on_stand(
+        args, stand, plan, lambda s, p, stop: operations.autotune(s, plan, p, stop), con,
+        simulated=simulated)
+    result, err = _finish(stand, job, interrupted)
     session_path = str(stand.log.path) if stand.log else None
     report = None
     if session_path and getattr(args, "report", True):
         try:
             from agent.logbook import report_session
             report = str(report_session(session_path, Path(session_path) / "report.html"))
-        except Exception as exc:  # the run's result matters more than its report
+        except (LogbookError, OSError, ValueError) as exc:  # the result matters more
             con.print(f"[yellow]report not written: {exc}[/]")
     if err is not None:
         con.print(f"[bold red]autotune failed:[/] {err}")
         if args.json:
             print(json.dumps({"outcome": "error", "error": str(err), "session": session_path,
                               "kills": stand.kills}))
-        return 3
+        return _failure_code(err)
     if args.json:
         d = result.to_dict()
         d["report"] = report
@@ -293,24 +290,17 @@ def cmd_autotune(args, *, mock=None, port=None) -> int:
         con.print(f"log:     {session_path}")
         if report:
             con.print(f"report:  {report}")
-    return {"ok": 0, "partial": 4, "killed": 5, "cancelled": 130}.get(result.outcome, 3)
+    return result.outcome.exit_code
 
 
 def cmd_demo(args) -> int:
-    from mock_device.runner import start_mock
-    from mock_device.scenarios import load_scenario
+    from agent import operations
     con = _console(args)
-    try:
-        scenario = load_scenario(args.scenario)
-    except (FileNotFoundError, KeyError, ValueError) as exc:
-        raise UserError(f"scenario {args.scenario!r}: {exc}") from None
-    speed = "max" if args.speed == "max" else float(args.speed)
-    mock = start_mock(scenario, transport="pty", speed=speed, seed=args.seed)
-    con.print(f"[bold]DEMO[/]: simulated board (invented stand '{scenario.name}') on "
+    mock = operations.start_builtin_board(args.scenario, args.speed, args.seed)
+    con.print(f"[bold]DEMO[/]: simulated board (invented stand '{args.scenario}') on "
               f"{mock.port}, clock x{args.speed}. No hardware is driven.")
-    args.confirm_safe = True  # the demo drives a simulation; the cautions are still shown
     args.port = mock.port
-    return cmd_autotune(args, mock=mock, port=mock.port)
+    return cmd_autotune(args, mock=mock, port=mock.port, simulated=True)
 
 
 # ------------------------------------------------------------------------------ settings
@@ -326,12 +316,14 @@ def _parse_assignments(items) -> dict[str, float]:
             out[name.strip()] = float(value)
         except ValueError:
             raise UserError(f"--set {item!r}: {value!r} is not a number") from None
+        if not math.isfinite(out[name.strip()]):
+            raise UserError(f"--set {item!r}: {value!r} is not a finite number")
     return out
 
 
 def cmd_settings(args) -> int:
     """Show the board's settings table; with --set, write values (all checked first)."""
-    from agent.session import SessionError
+    from agent import operations
     con = _console(args)
     values = _parse_assignments(args.set)  # bad syntax: error before connecting
     stand = _connect(args.port, args)
@@ -346,7 +338,7 @@ def cmd_settings(args) -> int:
                                     "(it does not offer persist); the values written stay "
                                     "until it restarts")
                 stand.session.persist()
-        except SessionError as exc:
+        except DeviceError as exc:
             raise UserError(str(exc)) from None
         if args.json:
             print(json.dumps({"written": written, "persisted": bool(args.persist),
@@ -368,7 +360,7 @@ def cmd_settings(args) -> int:
             if args.persist:
                 con.print("stored the settings in the board's non-volatile memory")
     finally:
-        stand.close("settings")
+        operations.close(stand, "settings")
     return 0
 
 
