@@ -161,6 +161,7 @@ def armed(stand: Stand, plan: Plan) -> Iterator[Stand]:
 def tune_one(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = quiet,
              stop: threading.Event | None = None) -> LoopResult:
     """Arm, tune one loop (as the plan says: apply, verify), disarm."""
+    workflows.worker.analysis_pool()  # started before arming: a Ctrl-C meets a ready worker
     with armed(stand, plan):
         return workflows.tune_loop(stand, lp, plan, progress, stop)
 
@@ -168,6 +169,7 @@ def tune_one(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = quie
 def autotune(stand: Stand, plan: Plan, progress: ProgressFn = quiet,
              stop: threading.Event | None = None) -> StandResult:
     """Every loop of the plan in cascade order (the workflow arms and disarms)."""
+    workflows.worker.analysis_pool()  # started before arming: a Ctrl-C meets a ready worker
     return workflows.autotune(stand, plan, progress, stop)
 
 

@@ -21,7 +21,7 @@ from protocol import messages as m
 from protocol.messages import DeviceState, EventKind, KillReason
 
 from . import __version__
-from .errors import WorkflowError
+from .errors import LogbookError, WorkflowError
 from .link import Link, LinkError
 from .safety import Limits, SafetyMonitor, Trip
 from .session import Session, SessionError
@@ -136,6 +136,7 @@ class Stand:
     last_telemetry_s: float = field(default_factory=time.monotonic)
     telemetry_timeout_s: float = 1.0  # silence during an experiment = a dead link: kill
     _closed: bool = False
+    log_error: str | None = None  # the first log write the disk refused (None: all written)
 
     # ------------------------------------------------------------------ construction
     @classmethod
@@ -180,6 +181,7 @@ class Stand:
     def open_log(self, logbook, plan_dict: dict, confirmations: dict | None = None,
                  name: str | None = None):
         """Open the session log (before anything is armed: disk problems stop us here)."""
+        self.log_error = None
         self.log = logbook.open_session(
             device=self.info.as_dict(), settings_before=dict(self.session.values),
             plan=plan_dict, tool_version=__version__, protocol_version=self.info.protocol,
@@ -192,7 +194,22 @@ class Stand:
                 fields.setdefault("host_time_s", time.time())
                 self.log.event(kind, **fields)
             except Exception as exc:  # a full disk must not stop a kill; say it once
-                self.emit(Notice.WARNING, f"log write failed: {exc}")
+                self.note_log_error(exc)
+
+    def note_log_error(self, exc: BaseException) -> None:
+        """A log write failed (full disk, removed folder): warn once and remember it, so the
+        workflow stops before it writes gains it could not record (see check_log)."""
+        if self.log_error is None:
+            self.log_error = str(exc) or type(exc).__name__
+            self.emit(Notice.WARNING, f"log write failed: {self.log_error}")
+
+    def check_log(self) -> None:
+        """Raise LogbookError when a log write has failed since the session log was opened."""
+        if self.log_error is not None:
+            raise LogbookError(f"the session log refused a write ({self.log_error}); the run "
+                               "stops here so that nothing happens on the board that the log "
+                               "cannot record. Free disk space or choose --log-dir, then run "
+                               "again")
 
     # ------------------------------------------------------------------ data flow
     def _on_telemetry(self, host_t: float, tel: m.Telemetry) -> None:
@@ -206,7 +223,7 @@ class Stand:
                 exp.append(host_t + self._wall_offset, tel)  # the log keeps Unix time
             except Exception as exc:
                 self.experiment_log = None
-                self.emit(Notice.WARNING, f"telemetry log write failed: {exc}")
+                self.note_log_error(exc)
         self.emit(Notice.TELEMETRY, tel)
 
     def _on_event(self, host_t: float, ev: m.Event) -> None:

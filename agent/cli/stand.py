@@ -13,8 +13,7 @@ from rich.console import Console
 from rich.progress import BarColumn, Progress as RichProgress, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
-from agent.errors import (DeviceError, ExitCode, LinkError, LogbookError, PlanError,
-                          TetherloopError)
+from agent.errors import DeviceError, ExitCode, LinkError, LogbookError, PlanError
 from protocol.messages import Capability, KillReason
 
 from . import UserError
@@ -185,9 +184,11 @@ def _g(x) -> str:
     return f"{x:.4g}"
 
 
-def _failure_code(err: BaseException) -> int:
+def _failure_code(err: BaseException, interrupted: bool = False) -> int:
+    """Exit code of a run that ended in an error: KILLED after the operator's Ctrl-C (whatever
+    the interrupted step then raised) or a kill, else FAILED."""
     from agent.stand import KillTripped
-    if isinstance(err, KillTripped):
+    if interrupted or isinstance(err, KillTripped):
         return int(ExitCode.KILLED)
     return int(ExitCode.FAILED)
 
@@ -218,13 +219,11 @@ def cmd_tune(args) -> int:
                                                                          stop), con)
     result, err = _finish(stand, job, interrupted)
     session_path = str(stand.log.path) if stand.log else None
-    if interrupted and err is not None:
-        err = err if isinstance(err, TetherloopError) else None
     if err is not None:
-        con.print(f"[bold red]tune failed:[/] {err}")
+        con.print(f"[bold red]tune {'killed' if interrupted else 'failed'}:[/] {err}")
         if args.json:
             print(json.dumps({"error": str(err), "kills": stand.kills, "session": session_path}))
-        return _failure_code(err)
+        return _failure_code(err, interrupted)
     if result is None:
         return int(ExitCode.KILLED)
     if args.json:
@@ -272,11 +271,11 @@ def cmd_autotune(args, *, mock=None, port=None, simulated: bool = False) -> int:
         except (LogbookError, OSError, ValueError) as exc:  # the result matters more
             con.print(f"[yellow]report not written: {exc}[/]")
     if err is not None:
-        con.print(f"[bold red]autotune failed:[/] {err}")
+        con.print(f"[bold red]autotune {'killed' if interrupted else 'failed'}:[/] {err}")
         if args.json:
             print(json.dumps({"outcome": "error", "error": str(err), "session": session_path,
                               "kills": stand.kills}))
-        return _failure_code(err)
+        return _failure_code(err, interrupted)
     if args.json:
         d = result.to_dict()
         d["report"] = report

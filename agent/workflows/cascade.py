@@ -8,7 +8,7 @@ from protocol import messages as m
 from protocol.messages import KillReason
 
 from .. import analysis
-from ..errors import Cancelled, DeviceError, LinkError, WorkflowError
+from ..errors import Cancelled, DeviceError, LinkError, LogbookError, WorkflowError
 from ..plan import LoopPlan, Plan, check_against_device
 from ..stand import KillTripped, Notice, Stand
 from .loop import tune_loop
@@ -59,6 +59,10 @@ def autotune(stand: Stand, plan: Plan, progress: ProgressFn = quiet,
                               and r.loop == "rate" and lp.loop != "rate"), None)
                 try:
                     lr = tune_loop(stand, lp, plan, progress, stop, inner=inner)
+                except LogbookError as exc:
+                    result.loops.append(LoopResult(lp.key, lp.axis, lp.loop, lp.controller,
+                                                   status=LoopStatus.FAILED, message=str(exc)))
+                    raise
                 except WorkflowError as exc:
                     if isinstance(exc, (KillTripped, Cancelled)):
                         raise
@@ -80,6 +84,9 @@ def autotune(stand: Stand, plan: Plan, progress: ProgressFn = quiet,
         result.outcome, result.message = Outcome.KILLED, str(exc)
     except Cancelled as exc:
         result.outcome, result.message = Outcome.CANCELLED, str(exc)
+        safe_disarm(stand)
+    except LogbookError as exc:
+        result.outcome, result.message = Outcome.FAILED, str(exc)
         safe_disarm(stand)
     except (DeviceError, LinkError) as exc:
         if stand.killed:  # e.g. a request refused because a kill had just latched

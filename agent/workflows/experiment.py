@@ -26,16 +26,22 @@ import threading
 import time
 from typing import Any
 
+import numpy as np
+
 from protocol.messages import Axis, ExperimentKind, Loop
 from protocol.timing import sampling_delay_s
 
 from ..errors import Cancelled, LinkError, WorkflowError
 from ..plan import LoopPlan, Plan
 from ..session import SessionError
-from ..stand import Notice, Stand
+from ..stand import Stand
 
 POLL_S = 0.02
 IDLE_TELEMETRY_HZ = 50
+# the largest share of a record's samples that may be lost on the link before the record is
+# refused: more and a step's peak or a hold's spread is no longer measured but guessed
+# (common practice, no source)
+MAX_MISSING_FRACTION = 0.05
 
 
 def ids(lp: LoopPlan) -> tuple[int, int]:
@@ -203,6 +209,15 @@ class Experiment:
                                     f"({got:.2f} s of board time in {limit:.0f} s); check "
                                     "the link")
 
+    def missing_samples(self) -> tuple[int, int]:
+        """(received, missing) samples of this axis and level, from the board's time stamps:
+        a step of n ticks between two samples means n - 1 were lost on the link."""
+        t_us = np.sort(self.loop_columns()["time_us"])
+        if t_us.size < 2:
+            return int(t_us.size), 0
+        ticks = np.rint(np.diff(t_us) * self.stand.info.loop_rate_hz * 1e-6)
+        return int(t_us.size), int(np.clip(ticks - 1, 0, None).sum())
+
     def loop_columns(self) -> dict:
         """The buffer's columns of this axis and loop level."""
         cols = self.stand.buffer.axis(self.axis_i)
@@ -223,5 +238,5 @@ class Experiment:
             if result is not None:
                 log.result(result)
             log.close()
-        except Exception as exc:  # the disk, not the board: say so, carry on
-            self.stand.emit(Notice.WARNING, f"experiment log write failed: {exc}")
+        except Exception as exc:  # the disk, not the board: say so; check_log stops the run
+            self.stand.note_log_error(exc)

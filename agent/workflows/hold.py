@@ -12,7 +12,8 @@ from protocol.messages import Axis, ExperimentKind, Loop
 from ..errors import WorkflowError
 from ..plan import LoopPlan, Plan
 from ..stand import Stand
-from .experiment import Experiment, current_measurement, full_rate_telemetry, ids, wait
+from .experiment import (MAX_MISSING_FRACTION, Experiment, current_measurement,
+                         full_rate_telemetry, ids, wait)
 from .results import Progress, ProgressFn, Stage, quiet
 
 HOLD_S = {"rate": 0.5, "angle": 1.0, "heave": 2.0}
@@ -54,10 +55,18 @@ def noise_check(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = q
     if len(y) < 20:
         exp.finish({"error": "too few samples"})
         raise WorkflowError(f"{lp.key}: the hold gave only {len(y)} samples; check telemetry")
+    received, missing = exp.missing_samples()
+    if missing > MAX_MISSING_FRACTION * (received + missing):
+        msg = (f"{lp.key}: {missing} of {received + missing} samples of the hold were lost on "
+               f"the link (more than {MAX_MISSING_FRACTION:.0%}); check the cable and the "
+               "link's error counts")
+        exp.finish({"error": msg})
+        raise WorkflowError(msg)
     half = len(y) // 2
     noise = float(np.std(np.diff(y[half:])) / math.sqrt(2))
     trim = float(np.mean(u[half:]))
-    result = {"noise_std": noise, "trim": trim, "setpoint": setpoint, "samples": int(len(y))}
+    result = {"noise_std": noise, "trim": trim, "setpoint": setpoint, "samples": int(len(y)),
+              "samples_missing": missing}
     exp.finish(result)
     progress(Progress(Stage.NOISE, f"{lp.key}: noise {noise:.3g}, trim {trim:.3g}", lp.key,
                       data=result))

@@ -89,6 +89,7 @@ def tune_loop(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = qui
                       f"kd {res.chosen.kd:.4g}", lp.key, data=res.to_dict()))
     if not plan.apply:
         return res
+    stand.check_log()  # nothing is written to the board that the log could not record
     res.previous_gains = current_gains(stand, lp)
     try:
         res.applied_gains = apply_gains(stand, gains_of(res.chosen, lp, res.operating_point,
@@ -127,6 +128,11 @@ def tune_loop(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = qui
                        exp_id=f"{lp.axis}-{lp.loop}-verify-fallback")
     if res.status != LoopStatus.VERIFIED:
         rollback(stand, res, progress)
+    if stand.log_error is not None and res.status == LoopStatus.VERIFIED:
+        # the step's record was lost: gains nobody can audit do not stay on the board
+        rollback(stand, res, progress, why=f"the session log refused a write "
+                 f"({stand.log_error})")
+    stand.check_log()
     return res
 
 

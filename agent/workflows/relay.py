@@ -85,6 +85,7 @@ def relay_experiment(stand: Stand, lp: LoopPlan, plan: Plan, *, trim: float, hys
                      reference=setpoint if lp.loop == "heave" else None, stop=stop)
     decision = None
     adjustments: list[dict] = []
+    bad_before = stand.link.stats.bad_frames
     progress(Progress(Stage.RAMP, f"{lp.key}: relay starts at amplitude {sup.amplitude:.3g} "
                       f"(target oscillation {target:.3g})", lp.key,
                       data={"amplitude": sup.amplitude, "target": target}))
@@ -139,9 +140,13 @@ def relay_experiment(stand: Stand, lp: LoopPlan, plan: Plan, *, trim: float, hys
     rate = stand.info.loop_rate_hz
     gaps = int(np.count_nonzero(np.diff(t_axis[a:b + 1]) > 1.5 * 1e6 / rate))
     if gaps:
+        bad = stand.link.stats.bad_frames - bad_before
+        cause = (f"the host rejected {bad} damaged frame(s) (CRC or framing errors) meanwhile: "
+                 "check the cable, its shielding and the baud rate" if bad else
+                 "no damaged frames arrived, so the host or the link did not keep up: use a "
+                 "faster link, or a slower simulation clock for the mock")
         msg = (f"{lp.key}: {gaps} telemetry gap(s) in the analysed periods: samples were lost "
-               "on the link (the host did not keep up). Use a faster link, or a slower "
-               "simulation clock for the mock.")
+               f"on the link; {cause}.")
         exp.finish({"error": msg, "relay": {"adjustments": adjustments}})
         raise WorkflowError(msg)
     ai = AnalysisInput(

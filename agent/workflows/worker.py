@@ -15,8 +15,10 @@ import signal
 import sys
 import threading
 from concurrent.futures import ProcessPoolExecutor
+from concurrent.futures.process import BrokenProcessPool
 
 from .. import analysis
+from ..errors import WorkflowError
 from ..stand import Stand
 from .experiment import wait
 
@@ -76,7 +78,14 @@ def analyse(stand: Stand, record, kwargs: dict, stop: threading.Event | None) ->
     KillTripped, Cancelled
         A kill or the operator's stop while the worker runs.
     """
+    global _POOL
     fut = analysis_pool().submit(identify_and_tune, record, kwargs)
     while not fut.done():
         wait(stand, stop, 0.05)
-    return fut.result()
+    try:
+        return fut.result()
+    except BrokenProcessPool as exc:
+        with _POOL_LOCK:
+            _POOL = None  # the next analysis starts a fresh worker
+        raise WorkflowError(f"the analysis worker process ended unexpectedly ({exc}); "
+                            "run again") from None
