@@ -5,7 +5,9 @@ The link owns the only threads of the host side's I/O edge:
 * a reader thread that feeds every received byte to the protocol's ``StreamDecoder`` and
   dispatches frames: replies (FLAG_REPLY) complete the pending request with the same sequence
   number; Telemetry and Event frames go to subscribers (called on the reader thread: keep them
-  short and never block);
+  short and never block). A subscriber that raises is counted (``LinkStats.subscriber_errors``)
+  and skipped: one faulty listener must not stop the replies, nor the safety monitor that
+  listens beside it;
 * a keepalive thread that sends ``Keepalive`` every ``keepalive_s``, whatever else is going out,
   so the device's watchdog stays fresh while the host lives (a device may require a recent
   Keepalive itself, not just any frame, before it arms: proof that this thread runs).
@@ -13,10 +15,18 @@ The link owns the only threads of the host side's I/O edge:
 Requests are numbered; a request whose reply does not come within ``timeout_s`` is resent
 unchanged (same sequence number) with FLAG_RETRY, so the device answers from its reply cache and
 never executes it twice. After ``retries`` resends the request fails with ``LinkTimeout``.
+
+The link ends in one of two ways. *Lost*: a read or write of the port failed (cable pulled,
+adapter gone); ``lost_reason`` says why, the ``on_lost`` subscribers are told once, and every
+request (waiting or new) raises ``LinkError``. *Closed*: ``close()`` was called; requests waiting
+and new ones raise ``LinkError`` at once, nothing more is written and no loss is reported.
+Known limit: replies are matched on seq alone, so a reply of the wrong type is accepted.
 """
 
 from __future__ import annotations
 
+import errno
+import re
 import statistics
 import threading
 import time
@@ -28,7 +38,7 @@ import serial
 
 from protocol import codec
 from protocol.messages import (FLAG_REPLY, FLAG_RETRY, PROTOCOL_MAJOR, Event, Keepalive, Kill,
-                               Refuse, Telemetry)
+                               Telemetry)
 
 
 @dataclass(frozen=True)
@@ -44,6 +54,10 @@ from .errors import LinkError, LinkTimeout  # noqa: E402  (re-exported: agent.li
 
 @dataclass
 class LinkStats:
+    """Counters of one link, written by its threads without a lock (each field has one writer,
+    so a reader sees a recent value, never a torn one). Latencies in ms, from the last send of a
+    request to its reply."""
+
     frames_in: int = 0
     frames_out: int = 0
     bad_frames: int = 0
@@ -54,14 +68,19 @@ class LinkStats:
     events: int = 0
     bytes_in: int = 0
     bytes_out: int = 0
+    subscriber_errors: int = 0  # subscriber calls that raised (skipped; the reader goes on)
     latency_ms_last: float = float("nan")
     latency_ms_median: float = float("nan")
 
     def as_dict(self) -> dict:
+        """The counters by name (for the session log's manifest)."""
         return dict(self.__dict__)
 
 
 class _Pending:
+    """One request waiting for its reply: the reader thread fills ``reply`` and sets ``event``;
+    a lost or closed link sets ``event`` with ``reply`` still None."""
+
     __slots__ = ("seq", "frame", "event", "reply", "sent_at", "first_sent_at")
 
     def __init__(self, seq: int, frame: bytes):
@@ -73,10 +92,36 @@ class _Pending:
         self.first_sent_at = 0.0
 
 
+def _errno_of(exc: BaseException, text: str) -> int | None:
+    """The errno of a failed open: the exception's own, else the first "[Errno N]" in its text
+    (pyserial often puts the OS error only in the message)."""
+    if isinstance(getattr(exc, "errno", None), int):
+        return exc.errno
+    found = re.search(r"errno (\d+)", text, re.IGNORECASE)
+    return int(found.group(1)) if found else None
+
+
 def open_port(port: str | Any, baudrate: int = 921600):
-    """Open ``port`` (a device path or a pyserial URL such as ``socket://host:port`` or
-    ``loop://``) or pass through an already open serial-like object. Errors become LinkError
-    with a sentence saying what was wrong and what to try."""
+    """Open a serial port, or pass an open one through.
+
+    Parameters
+    ----------
+    port : str or serial-like object
+        A device path, a pyserial URL (``socket://host:port``, ``loop://``, ``rfc2217://``) or
+        an object that already behaves like ``serial.Serial`` (returned unchanged).
+    baudrate : int
+        Bits per second for a real port (URLs ignore it).
+
+    Returns
+    -------
+    The open port. Device paths are opened exclusively, so a second program cannot share them.
+
+    Raises
+    ------
+    LinkError
+        The port does not exist, is not ours to open, is busy, nothing listens at the URL, or
+        another failure; the message says what was wrong and what to try.
+    """
     if not isinstance(port, str):
         return port
     try:
@@ -88,16 +133,18 @@ def open_port(port: str | Any, baudrate: int = 921600):
     except (serial.SerialException, OSError, ValueError) as exc:
         text = str(exc)
         low = text.lower()
-        if "no such file" in low or "could not open port" in low and "errno 2" in low:
+        # classify by the errno number, not by its digits in the text ("errno 21" is no ENOENT)
+        code = _errno_of(exc, text)
+        if "no such file" in low or code == errno.ENOENT:
             raise LinkError(f"serial port {port!r} does not exist. Check the cable and the name; "
                             "`tetherloop ports` lists the ports this machine has.") from None
-        if "permission denied" in low or "errno 13" in low:
+        if "permission denied" in low or code == errno.EACCES:
             raise LinkError(f"permission denied opening {port!r}. Add your user to the group that "
                             "owns the port (often 'dialout') or check its permissions.") from None
-        if "lock" in low or "busy" in low or "errno 16" in low:
+        if "lock" in low or "busy" in low or code == errno.EBUSY:
             raise LinkError(f"serial port {port!r} is busy: another program has it open. Close "
                             "that program and try again.") from None
-        if "connection refused" in low or "errno 111" in low:
+        if "connection refused" in low or code == errno.ECONNREFUSED:
             raise LinkError(f"nothing is listening at {port!r} (connection refused). Start the "
                             "device or the mock first.") from None
         raise LinkError(f"could not open {port!r}: {text}") from None
@@ -105,7 +152,31 @@ def open_port(port: str | Any, baudrate: int = 921600):
 
 
 class Link:
-    """Framed request/response link over a serial-like port. Thread-safe."""
+    """Framed request/response link over a serial-like port; every method is thread-safe.
+
+    Parameters
+    ----------
+    port : str or serial-like object
+        What :func:`open_port` accepts. A port given by name is owned (closed by ``close()``);
+        an object passed in stays open and belongs to the caller.
+    baudrate : int
+        For a port opened by name.
+    timeout_s : float
+        How long one try of a request waits for its reply (default for ``request``).
+    retries : int
+        Resends after the first try (default for ``request``).
+    keepalive_s : float
+        Period of the keepalive thread; keep it well under the board's ``watchdog_s``.
+    clock : callable
+        Host time in s for stats, the keepalive stamp and the subscribers' time argument.
+
+    Raises
+    ------
+    LinkError
+        From :func:`open_port` when the port cannot be opened.
+
+    Starting the link starts its reader and keepalive threads (daemons); ``close()`` ends them.
+    """
 
     def __init__(self, port: str | Any, *, baudrate: int = 921600, timeout_s: float = 0.25,
                  retries: int = 3, keepalive_s: float = 0.1, clock: Callable[[], float] = time.monotonic):
@@ -128,6 +199,7 @@ class Link:
         self._latencies: deque[float] = deque(maxlen=200)
         self._last_tx = 0.0
         self._stop = threading.Event()
+        self._closed = False
         self.lost_reason: str | None = None
         self._reader = threading.Thread(target=self._read_loop, name="tetherloop-reader",
                                         daemon=True)
@@ -137,19 +209,22 @@ class Link:
         self._keeper.start()
 
     # -------------------------------------------------------------- subscriptions
+    # Subscribers are called on the reader thread in the order they subscribed; they must be
+    # short and must not block (a request from inside one would wait for the very thread that
+    # has to deliver its reply). A subscriber that raises is counted and skipped.
+
     def on_telemetry(self, fn: Callable[[float, Telemetry], None]) -> None:
+        """Call ``fn(host_time_s, telemetry)`` for every Telemetry frame (reader thread)."""
         self._telemetry_subs.append(fn)
 
     def on_event(self, fn: Callable[[float, Event], None]) -> None:
+        """Call ``fn(host_time_s, event)`` for every Event frame (reader thread)."""
         self._event_subs.append(fn)
 
     def on_lost(self, fn: Callable[[str], None]) -> None:
+        """Call ``fn(reason)`` once when the link is lost, on the thread whose read or write
+        failed (never after ``close()``)."""
         self._lost_subs.append(fn)
-
-    def remove_subscriber(self, fn) -> None:
-        for subs in (self._telemetry_subs, self._event_subs, self._lost_subs):
-            if fn in subs:
-                subs.remove(fn)
 
     # -------------------------------------------------------------- sending
     def _next_seq(self) -> int:
@@ -157,10 +232,17 @@ class Link:
             self._seq = (self._seq + 1) & 0xFFFF
             return self._seq
 
+    def _ended(self) -> LinkError:
+        """The error for a request on a link that was closed or lost."""
+        if self._closed:
+            return LinkError(f"the link to {self.port_name} is closed: this session has ended. "
+                             "Open a new session to talk to the board again.")
+        return LinkError(f"the link to {self.port_name} is lost ({self.lost_reason})")
+
     def _write(self, data: bytes) -> None:
-        if self.lost_reason is not None:
-            raise LinkError(f"the link to {self.port_name} is lost ({self.lost_reason})")
-        with self._write_lock:
+        if self._closed or self.lost_reason is not None:
+            raise self._ended()
+        with self._write_lock:  # frames from several threads must not interleave on the wire
             try:
                 self._ser.write(data)
             except (serial.SerialException, OSError) as exc:
@@ -171,14 +253,48 @@ class Link:
             self.stats.bytes_out += len(data)
 
     def send(self, msg) -> int:
-        """Send a message that expects no reply (Keepalive). Returns its sequence number."""
+        """Send a message that expects no reply (Keepalive); any thread.
+
+        Returns
+        -------
+        int
+            The frame's sequence number.
+
+        Raises
+        ------
+        LinkError
+            The link is closed or lost, or the write failed (the link is then lost).
+        """
         seq = self._next_seq()
         self._write(codec.encode(msg, seq))
         return seq
 
     def request(self, msg, *, timeout_s: float | None = None, retries: int | None = None):
-        """Send ``msg`` and wait for its reply (Ack, Refuse or the data reply). Resends with
-        FLAG_RETRY on time-out; raises LinkTimeout when all tries are spent."""
+        """Send ``msg`` and wait for the reply with its sequence number; any thread but the
+        reader's (which delivers the reply).
+
+        Each try waits ``timeout_s``; after a time-out the same frame (same seq) is resent with
+        FLAG_RETRY, up to ``retries`` times, so a board that did execute it answers from its
+        reply cache instead of executing it again.
+
+        Parameters
+        ----------
+        msg : a host message of protocol.messages
+        timeout_s, retries : float, int, optional
+            Override the link's defaults for this call.
+
+        Returns
+        -------
+        The reply message (Ack, Refuse or the data reply), or a :class:`ForeignVersion` when
+        the reply came in another protocol major. Refusals are returned, not raised.
+
+        Raises
+        ------
+        LinkTimeout
+            No reply after every try.
+        LinkError
+            The link is closed or lost, before or while waiting.
+        """
         timeout_s = self.timeout_s if timeout_s is None else timeout_s
         retries = self.retries if retries is None else retries
         seq = self._next_seq()
@@ -194,9 +310,11 @@ class Link:
                     pend.first_sent_at = pend.sent_at
                 self._write(frame)
                 if pend.event.wait(timeout_s):
+                    if pend.reply is None:  # woken by a loss or by close(), not by a reply
+                        raise self._ended()
                     return pend.reply
-                if self.lost_reason is not None:
-                    raise LinkError(f"the link to {self.port_name} is lost ({self.lost_reason})")
+                if self.lost_reason is not None or self._closed:
+                    raise self._ended()
             self.stats.timeouts += 1
             raise LinkTimeout(f"no reply from {self.port_name} to {type(msg).__name__} after "
                               f"{retries + 1} tries of {timeout_s * 1000:.0f} ms. Is the board "
@@ -205,9 +323,22 @@ class Link:
             self._pending.pop(seq, None)
 
     def send_kill(self, reason: int, value: float = 0.0) -> float:
-        """Write a Kill frame at once, without waiting (safe from the reader thread), then make
-        sure of it in the background: resend with FLAG_RETRY until acknowledged (up to 10 tries).
-        Returns the host time at which the first frame was written."""
+        """Write a Kill frame at once, without waiting; safe from any thread, the reader's too.
+
+        A thread of its own then makes sure of it: while no Ack with the kill's seq has come
+        within ``timeout_s``, it resends the frame with FLAG_RETRY, up to 10 times, and gives up
+        quietly when the link is lost or closed (the board's watchdog kills then).
+
+        Returns
+        -------
+        float
+            Host time (``clock``) just after the first frame was written.
+
+        Raises
+        ------
+        LinkError
+            The first frame could not be written (link closed, lost or failing).
+        """
         msg = Kill(reason=int(reason), value=float(value))
         seq = self._next_seq()
         pend = _Pending(seq, codec.encode(msg, seq))
@@ -219,7 +350,7 @@ class Link:
             raise
         t = self.clock()
 
-        def confirm():
+        def confirm():  # on the tetherloop-kill-confirm thread
             try:
                 for _ in range(10):
                     if pend.event.wait(self.timeout_s) or self.lost_reason is not None:
@@ -236,6 +367,7 @@ class Link:
 
     # -------------------------------------------------------------- threads
     def _keepalive_loop(self) -> None:
+        """Keepalive thread: one Keepalive now and every ``keepalive_s`` until close or loss."""
         while True:
             if self.lost_reason is not None:
                 return
@@ -247,11 +379,14 @@ class Link:
                 return
 
     def _read_loop(self) -> None:
+        """Reader thread: read what is there (at least one byte, up to the port's timeout),
+        decode, dispatch. A failing read marks the link lost, except after close()."""
         ser = self._ser
         while not self._stop.is_set():
             try:
                 waiting = ser.in_waiting
                 data = ser.read(waiting if waiting else 1)
+            # TypeError/AttributeError: some pyserial backends fail that way on a closed port
             except (serial.SerialException, OSError, TypeError, AttributeError) as exc:
                 if self._stop.is_set():
                     return
@@ -266,14 +401,17 @@ class Link:
             self.stats.bad_frames = self.decoder.stats.bad
 
     def _dispatch(self, now: float, frame: codec.Frame) -> None:
+        """Reader thread: complete the pending request a reply answers, or tell subscribers."""
         msg = frame.msg
-        if msg is None:
+        if msg is None:  # payload did not decode (counted by the decoder)
             return
         self.stats.frames_in += 1
         if frame.major != PROTOCOL_MAJOR:
             self.stats.foreign_version += 1
             msg = ForeignVersion(frame.major, frame.minor)
         if frame.flags & FLAG_REPLY:
+            # a reply nobody waits for any more (late, after a time-out) is dropped here; the
+            # first reply to a resent request wins, the board's cached copy is the same bytes
             pend = self._pending.get(frame.seq)
             if pend is not None and not pend.event.is_set():
                 pend.reply = msg
@@ -284,15 +422,21 @@ class Link:
             return
         if isinstance(msg, Telemetry):
             self.stats.telemetry += 1
-            for fn in tuple(self._telemetry_subs):
-                fn(now, msg)
+            self._tell(self._telemetry_subs, now, msg)
         elif isinstance(msg, Event):
             self.stats.events += 1
-            for fn in tuple(self._event_subs):
+            self._tell(self._event_subs, now, msg)
+
+    def _tell(self, subs: list, now: float, msg) -> None:
+        for fn in tuple(subs):  # a copy: subscribing from another thread must not break this
+            try:
                 fn(now, msg)
+            except Exception:  # noqa: BLE001 - see the module docstring: count, go on
+                self.stats.subscriber_errors += 1
 
     def _mark_lost(self, reason: str) -> None:
-        if self.lost_reason is not None:
+        """Record the loss once, wake every waiting request, tell the on_lost subscribers."""
+        if self.lost_reason is not None or self._closed:
             return
         self.lost_reason = reason
         for pend in list(self._pending.values()):
@@ -304,12 +448,20 @@ class Link:
                 pass
 
     def latency_ms_median(self) -> float:
+        """Median request latency (ms) of the last 200 replies, NaN before the first; also
+        stored in ``stats.latency_ms_median``."""
         vals = list(self._latencies)
         self.stats.latency_ms_median = statistics.median(vals) if vals else float("nan")
         return self.stats.latency_ms_median
 
     def close(self) -> None:
+        """End the link: stop both threads, wake waiting requests (they raise LinkError) and
+        close the port if the link opened it. Idempotent; call it from any thread but the
+        reader's. Waits up to about a second per thread (the port's read timeout)."""
+        self._closed = True
         self._stop.set()
+        for pend in list(self._pending.values()):
+            pend.event.set()
         self._keeper.join(timeout=1.0)
         if self._owns_port:
             try:
@@ -323,10 +475,6 @@ class Link:
 
     def __exit__(self, *exc):
         self.close()
-
-
-def is_refusal(reply) -> bool:
-    return isinstance(reply, Refuse)
 
 
 def list_ports() -> list[tuple[str, str, str]]:
