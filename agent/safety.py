@@ -3,7 +3,8 @@
 The device has its own kill thresholds and watchdog; the host watches as well, because it sees
 what the operator cares about and can stop everything from the keyboard. The monitor runs on the
 link's reader thread: it checks every telemetry sample the moment it is decoded and writes the
-Kill frame at once, without waiting for anything.
+Kill frame at once, without waiting for anything (a reply would have to come through the very
+thread that is waiting for it).
 """
 
 from __future__ import annotations
@@ -26,6 +27,7 @@ CAUTIONS = (
 
 
 def caution_text() -> str:
+    """The cautions as numbered lines, one per caution, for a terminal or a dialog."""
     return "\n".join(f"  {i}. {c}" for i, c in enumerate(CAUTIONS, 1))
 
 
@@ -50,6 +52,9 @@ class Limits:
 
 @dataclass(frozen=True)
 class Trip:
+    """One kill the host sent: why, where, and the value compared with the threshold (for heave,
+    the excursion from the reference, as the board reports its own heave kills)."""
+
     reason: int
     axis: int
     loop: int
@@ -60,9 +65,11 @@ class Trip:
 
     @property
     def latency_ms(self) -> float:
+        """From the offending sample's arrival to the kill frame's write; NaN if not written."""
         return (self.kill_sent_s - self.sample_time_s) * 1000.0
 
     def as_dict(self) -> dict:
+        """The trip for the session log (reason by name)."""
         return {"reason": KillReason(self.reason).name.lower(), "axis": self.axis,
                 "loop": self.loop, "value": self.value, "threshold": self.threshold,
                 "latency_ms": self.latency_ms}
@@ -70,8 +77,14 @@ class Trip:
 
 @dataclass
 class SafetyMonitor:
-    """Watches telemetry and kills on a threshold crossing. ``kill(reason, value) -> time``
-    writes the kill; ``on_trip`` subscribers hear about it (logbook, UI)."""
+    """Watches telemetry and kills on a threshold crossing.
+
+    ``kill(reason, value) -> host time`` writes the kill (``Session.kill``: it must not wait);
+    ``on_trip`` subscribers hear about each trip (stand, logbook, UI) on the thread that
+    tripped, after the kill is written. The monitor checks only while ``active``; a trip
+    switches it off (one kill per crossing) and the workflow switches it on again for the next
+    experiment. Thread-safe: ``check`` runs on the reader thread, ``trip`` from any thread.
+    """
 
     kill: Callable[[int, float], float]
     limits: Limits = field(default_factory=Limits)
@@ -82,9 +95,21 @@ class SafetyMonitor:
     _lock: threading.Lock = field(default_factory=threading.Lock)
 
     def set_reference(self, axis: int, loop: int, value: float) -> None:
+        """The height (m) from which a heave loop's excursion is measured (the start of the
+        experiment); other loops are limited in absolute value."""
         self.references[(axis, loop)] = value
 
     def check(self, host_time_s: float, tel: Telemetry) -> Trip | None:
+        """Check one telemetry sample (a link subscriber: reader thread).
+
+        Every reported axis is compared with its limit (``Limits.threshold``); a value beyond it,
+        or one that is not finite (a broken sensor must not pass), trips with HOST_MONITOR.
+
+        Returns
+        -------
+        Trip or None
+            The trip, if this sample caused one.
+        """
         if not self.active:
             return None
         for s in tel.axes:
@@ -93,11 +118,23 @@ class SafetyMonitor:
             limit = self.limits.threshold(s.axis, s.loop)
             if not math.isfinite(value) or abs(value) > limit:
                 return self.trip(KillReason.HOST_MONITOR, host_time_s, s.axis, s.loop,
-                                 s.measurement, limit)
+                                 value, limit)
         return None
 
     def trip(self, reason: int, host_time_s: float, axis: int = 255, loop: int = 255,
              value: float = 0.0, threshold: float = 0.0) -> Trip | None:
+        """Kill now and record why; any thread. Never raises.
+
+        A HOST_MONITOR trip happens only while active (the first of two racing samples wins);
+        any other reason (operator, link, error) always kills. If writing the kill fails (the
+        link is lost), the trip is recorded with ``kill_sent_s`` NaN: the board's watchdog kills
+        when the host falls silent.
+
+        Returns
+        -------
+        Trip or None
+            None only for a HOST_MONITOR trip while inactive.
+        """
         with self._lock:
             if not self.active and reason == KillReason.HOST_MONITOR:
                 return None
@@ -111,14 +148,20 @@ class SafetyMonitor:
         for fn in tuple(self.on_trip):
             try:
                 fn(trip)
-            except Exception:
+            except Exception:  # noqa: BLE001 - a listener's bug must not hide the trip from others
                 pass
         return trip
 
 
 def confirm_cautions(ask: Callable[[str], str], say: Callable[[str], None]) -> bool:
-    """Show the cautions and ask for an explicit typed confirmation. Returns True only if the
-    operator typed 'yes'."""
+    """Show the cautions with ``say``, then ask with ``ask`` for a typed confirmation.
+
+    Returns
+    -------
+    bool
+        True only if the answer is the word 'yes' (any case, surrounding blanks ignored); 'y',
+        an empty answer or anything else is a refusal.
+    """
     say("SAFETY — before arming the motors:\n" + caution_text())
     answer = ask("Type 'yes' to confirm all of the above and arm, anything else to stop: ")
     return answer.strip().lower() == "yes"
