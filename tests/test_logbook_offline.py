@@ -186,3 +186,18 @@ def test_report_of_a_crashed_session_renders_with_its_notes(demo_copy, tmp_path)
     assert "Recovery notes" in text and "not closed" in text and "cut off" in text
     assert "no analysis input was logged" in text
     assert len(re.findall("data:image/png;base64,", text)) == 3
+
+
+def test_a_damaged_result_file_is_an_error_not_an_experiment_without_result(demo_copy):
+    # before: "its results.json holds no analysis_input"/skipped, and `analyze` exited 0
+    results_path(demo_copy).write_text('{"format": "tetherloop-logbook", "res')
+    r = analyze_session(demo_copy, "e01-roll-rate-relay")[0]
+    assert r.status == "error" and "damaged" in r.message
+
+
+def test_a_missing_experiment_folder_is_reported(demo_copy):
+    import shutil
+    shutil.rmtree(results_path(demo_copy).parent)
+    rows = analyze_session(demo_copy)
+    gone = [r for r in rows if r.exp_id == "e01-roll-rate-relay"]
+    assert gone and gone[0].status == "error" and "folder is missing" in gone[0].message

@@ -126,6 +126,11 @@ def reanalyze_with_objects(rec: ExperimentRecord) -> tuple[Reanalysis, Any, Any,
     """:func:`reanalyze_experiment` plus the analysis objects (record, Identification,
     TuningResult), each None when not computed; the report plots from them."""
     result = rec.result or {}
+    damaged = [n for n in rec.notes if "experiment result" in n and "damaged" in n]
+    if rec.result is None and damaged:
+        # a results.json that exists but cannot be read is damage, not "no result"
+        return (Reanalysis(rec.exp_id, "error", f"not re-analysed: {damaged[0]}"),
+                None, None, None)
     ai = result.get("analysis_input")
     if rec.meta.get("kind") not in (None, "relay") or not isinstance(ai, dict):
         why = ("it is a " + str(rec.meta.get("kind")) + " experiment"
@@ -193,7 +198,15 @@ def analyze_session(path: Path | str, experiment: str | None = None) -> list[Rea
         recs = [sess.experiments[experiment]]
     else:
         recs = list(sess.experiments.values())
-    return [reanalyze_experiment(r) for r in recs]
+    out = [reanalyze_experiment(r) for r in recs]
+    if experiment is None:
+        present = set(sess.experiments)
+        for entry in sess.manifest.get("experiments") or []:
+            exp_id = entry.get("id") if isinstance(entry, dict) else None
+            if exp_id and exp_id not in present:
+                out.append(Reanalysis(exp_id, "error", f"not re-analysed: the manifest names "
+                                      f"experiment {exp_id!r} but its folder is missing."))
+    return out
 
 
 # ---------------------------------------------------------------------------- export
