@@ -80,6 +80,16 @@ class FaultConfig:
         return FaultConfig(**vals)
 
 
+def parse_stuck(spec: str) -> tuple[str, float]:
+    """'roll@2.5' or 'roll.rate@2.5' -> ('roll', 2.5)."""
+    try:
+        where, at = str(spec).split("@")
+        return where.split(".")[0], float(at)
+    except ValueError:
+        raise ValueError(f"stuck sensor spec {spec!r} not understood; expected AXIS@SECONDS, "
+                         f"e.g. roll@2.5") from None
+
+
 class FaultyLink:
     """Applies loss, bit flips, latency and a link drop to both directions of a link; the runner
     passes every byte through :meth:`incoming` / :meth:`outgoing` exactly once."""
@@ -93,7 +103,6 @@ class FaultyLink:
         self._out_q: deque = deque()
         self.lost = 0
         self.flipped = 0
-        self.dropped_after_cut = 0
 
     def _mangle(self, data: bytes) -> bytes:
         cfg = self.cfg
@@ -123,7 +132,6 @@ class FaultyLink:
     def _pass(self, queue, data: bytes, wall_s: float, device_s: float) -> bytes:
         """One direction: cut after the drop time, mangle, then hold for the added latency."""
         if device_s >= self.cfg.drop_at_s:
-            self.dropped_after_cut += len(data)
             return b""
         data = self._mangle(data)
         if not self.cfg.latency_s:

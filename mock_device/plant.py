@@ -44,7 +44,7 @@ from __future__ import annotations
 
 import math
 from collections import deque
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 
 import numpy as np
 
@@ -373,19 +373,6 @@ class TransferFunctionParams:
     delay_s: float = 0.0
     noise_std: float = 0.0
     output_limit: float = 1.0
-
-
-@dataclass
-class _TfCore:
-    n: int
-    phi: tuple
-    g0: tuple
-    g1: tuple
-    c: tuple
-    d: float
-    d_ticks: int
-    frac: float
-    x: list = field(default_factory=list)
 
 
 class TransferFunctionPlant:

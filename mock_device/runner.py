@@ -31,8 +31,8 @@ import time
 
 import numpy as np
 
-from .faults import FaultConfig, FaultyLink
-from .firmware import Firmware, parse_stuck
+from .faults import FaultConfig, FaultyLink, parse_stuck
+from .firmware import Firmware
 from .scenarios import Scenario, load_scenario
 from .transports import InprocLink, PtyLink, TcpLink
 
@@ -96,9 +96,6 @@ class MockHandle:
     @property
     def running(self) -> bool:
         return self._thread.is_alive()
-
-    def link_time(self) -> float:
-        return time.perf_counter() - self._t0
 
     def stop(self) -> None:
         self._stop.set()

@@ -40,8 +40,8 @@ of the board's PID (``kp``, ``ki/s``, ``kd*s/(tf*s+1)``, setpoint weight ``b`` o
 path) and a 6th-order Pade approximation of the inner loop's delay (sensor delay plus the board's
 sampling delay). The returned ``delay_s`` is the pure delay left outside (the sensor delay of
 the level's own measurement); the board's own sampling delay is NOT included, it is
-:attr:`Scenario.sampling_delay_s` = 1.5 ticks: the output computed at tick k is latched at tick
-k+1 (one tick) and held for a tick (zero-order hold, half a tick on average).
+:attr:`Scenario.sampling_delay_s` (protocol/timing.py: 1.5 ticks): the output computed at tick k
+is latched at tick k+1 (one tick) and held for a tick (zero-order hold, half a tick on average).
 """
 
 from __future__ import annotations
@@ -54,13 +54,15 @@ from typing import Any
 
 import numpy as np
 
+from protocol import timing
+from protocol.timing import SAMPLING_DELAY_TICKS  # noqa: F401 (importable from here too)
+
 from .plant import G_M_S2, HeaveParams, RotationParams, TransferFunctionParams
 
 SCENARIO_DIR = Path(__file__).with_name("scenarios")
 ROTATION_AXES = ("roll", "pitch", "yaw")
 ALL_AXES = ("roll", "pitch", "yaw", "heave")
 PID_PARAMS = ("kp", "ki", "kd", "tf", "b", "out_limit", "i_limit", "aw_mode", "aw_tt", "ff")
-SAMPLING_DELAY_TICKS = 1.5
 PADE_ORDER = 6
 
 
@@ -211,9 +213,9 @@ class Scenario:
 
     @property
     def sampling_delay_s(self) -> float:
-        """Delay the board's sampling adds as a controller sees it: 1.5 ticks (one tick from
-        computing at tick k to latching at k+1, half a tick of zero-order hold)."""
-        return SAMPLING_DELAY_TICKS / self.loop_rate_hz
+        """Delay the board's sampling adds as a controller sees it (protocol/timing.py): one
+        tick from computing at tick k to latching at k+1, half a tick of zero-order hold."""
+        return timing.sampling_delay_s(self.loop_rate_hz)
 
     def default_gains(self, axis: str, loop: str) -> dict[str, float]:
         return dict(self.gains.get((axis, loop), {}))

@@ -93,12 +93,6 @@ def _pid_unit(param: str, axis: str, loop: str, tf_plant: bool) -> str:
     return {"kp": kp, "ki": _KI_UNIT[kp], "kd": _KD_UNIT[kp]}.get(param, "")
 
 
-def unit_of(axis: str, loop: str) -> str:
-    if axis == "heave":
-        return "m/s" if loop == "rate" else "m"
-    return "rad/s" if loop == "rate" else "rad"
-
-
 @dataclass(frozen=True)
 class SettingDef:
     setting_id: int

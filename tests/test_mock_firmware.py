@@ -406,6 +406,81 @@ def test_watchdog_does_nothing_while_disarmed():
     assert w.fw.state == S.DISARMED
 
 
+LOOSE = {"kill_angle_rad": 3.0, "kill_rate_rad_s": 50.0, "kill_heave_m": 2.5,
+         "kill_saturation_s": 20.0}
+
+
+def _run_until_killed(fw: Firmware, ticks: int = 5000):
+    for _ in range(ticks):
+        fw.tick(0.0)
+        if fw.state == S.KILLED:
+            break
+    assert fw.state == S.KILLED
+    return [e for e in fw.events if e.kind == EK.KILL_TRIPPED][-1]
+
+
+@pytest.mark.parametrize("scenario, axis, loop, field, reason", [
+    ("single-axis", M.Axis.ROLL, M.Loop.RATE, "kill_rate_rad_s", M.KillReason.RATE_LIMIT),
+    ("single-axis", M.Axis.ROLL, M.Loop.ANGLE, "kill_angle_rad", M.KillReason.ANGLE_LIMIT),
+    ("heave-rail", M.Axis.HEAVE, M.Loop.HEAVE, "kill_heave_m", M.KillReason.HEAVE_LIMIT),
+    ("tf-fopdt", M.Axis.ROLL, M.Loop.RATE, "kill_rate_rad_s", M.KillReason.RATE_LIMIT),
+    ("tf-integrating", M.Axis.ROLL, M.Loop.ANGLE, "kill_angle_rad", M.KillReason.ANGLE_LIMIT),
+])
+def test_each_measured_kill_threshold_trips_on_its_own_axis(scenario, axis, loop, field, reason):
+    # protocol/SPEC.md 12.2: with only one threshold tight, a relay on the level trips exactly
+    # that one, on that axis, at the first sample beyond it (the relay's setpoint of 0.1 takes
+    # the measurement past 0.02 on every level)
+    fw = Firmware(scenario, seed=3)
+    fw.arm_now()
+    limits = dict(LOOSE, **{field: 0.02})
+    fw.start_experiment(relay(axis=axis, loop=loop, amplitude=0.3, setpoint=0.1, duration_s=5,
+                              **limits))
+    ev = _run_until_killed(fw)
+    assert (ev.reason, ev.axis) == (reason, axis)
+    assert abs(ev.value) > 0.02 and ev.threshold == pytest.approx(0.02)
+    assert abs(ev.value) < 0.2  # the first crossing, not long after
+
+
+def test_the_height_threshold_counts_from_the_height_at_the_experiment_start():
+    # protocol/SPEC.md 12.2: |height - height at start| > kill heave threshold. Lift the frame
+    # 0.5 m, hold it, then start a relay with a 5 cm threshold: an absolute check would trip at
+    # once with 0.5 m
+    fw = Firmware("heave-rail", seed=2)
+    fw.arm_now()
+    fw.start_experiment(M.ExperimentStart(
+        tag=3, kind=M.ExperimentKind.STEP, axis=M.Axis.HEAVE, loop=M.Loop.HEAVE,
+        amplitude=0.5, step_at_s=0.1, duration_s=6.0, **LOOSE))
+    for _ in range(8000):
+        fw.tick(0.0)
+    assert fw.state == S.ARMED and fw.level_signals("heave", "heave")[1] > 0.4
+    fw.start_experiment(relay(axis=M.Axis.HEAVE, loop=M.Loop.HEAVE, amplitude=0.3,
+                              duration_s=5, tag=4, **dict(LOOSE, kill_heave_m=0.05)))
+    fw.tick(0.0)
+    assert fw.state == S.RUNNING
+    ev = _run_until_killed(fw)
+    assert ev.reason == M.KillReason.HEAVE_LIMIT
+    assert 0.05 < abs(ev.value) < 0.1
+
+
+def test_the_kill_settings_apply_where_the_experiment_gives_zero():
+    fw = Firmware("single-axis", seed=3)
+    fw.set_setting("kill.rate_rad_s", 0.1)
+    fw.arm_now()
+    fw.start_experiment(relay(amplitude=0.3, duration_s=5))  # every threshold 0
+    ev = _run_until_killed(fw)
+    assert ev.reason == M.KillReason.RATE_LIMIT and ev.threshold == pytest.approx(0.1)
+
+
+def test_a_host_message_without_a_handler_stops_the_import(monkeypatch):
+    # the server's dispatch table is built from the message table (protocol/messages.py)
+    from mock_device.firmware import server
+    handlers = dict(server._handlers)
+    del handlers[M.SettingRead]
+    monkeypatch.setattr(server, "_handlers", handlers)
+    with pytest.raises(ImportError, match="without a handler: \\['SettingRead'\\]"):
+        server._dispatch_table()
+
+
 def test_stuck_sensor_is_detected_in_every_state():
     fw = Firmware("single-axis", seed=2)
     fw.schedule_stuck_sensor("roll", 0.2)

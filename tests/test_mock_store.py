@@ -4,10 +4,8 @@ on a pty, `tetherloop settings --set ... --persist`, restart, read back."""
 from __future__ import annotations
 
 import json
-import os
 import subprocess
 import sys
-import time
 
 import pytest
 

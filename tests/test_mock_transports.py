@@ -66,7 +66,7 @@ def test_raw_pty_passes_every_byte_value_untouched():
             # a host name full of bytes a cooked tty would eat or translate
             r = c.request(M.Hello(host_name="\r\n\x11\x13\x03\x04\x1a\x7f"))
             assert isinstance(r.msg, M.HelloReply)
-            assert h.firmware._decoder.stats.bad == 0
+            assert h.firmware.server.decoder.stats.bad == 0
 
 
 def test_session_over_tcp():
