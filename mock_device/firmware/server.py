@@ -1,0 +1,364 @@
+"""The board's protocol v1 server: frames from the host -> checks -> one handler per request.
+
+Each frame is processed as protocol/SPEC.md 11.1 says: a foreign major is refused; any intact
+frame refreshes the watchdog; a retry is answered from the reply cache (section 9); unknown
+types, device-only types and malformed payloads are refused (a malformed Kill is still a kill);
+a Keepalive has no reply; a request not legal in the present state is refused (the message
+table's ``legal_in``); otherwise its handler checks its own parameters, replies and acts. A reply
+precedes the events its request causes.
+
+The handlers are found through :data:`HANDLERS`, built from the message table
+(protocol/messages.py): one entry per message the host sends, so a message added to the table
+without a handler here stops the import with the name of what is missing.
+
+The server calls the board (``board.py``, its underscore methods are the package's internal
+commands) for everything that changes the device's state; it owns the decoder, the reply cache,
+the arming token and the times of the last host frames (the board's watchdog reads them).
+"""
+
+from __future__ import annotations
+
+import math
+from collections import OrderedDict
+from collections.abc import Callable
+
+from protocol import codec
+from protocol import messages as M
+from protocol.messages import DeviceState, FinishReason, KillReason, RefuseCode
+
+from .axes import LOOP_ID, NO_AXIS
+from .experiment import check_adjust, check_request
+
+FIRMWARE_VERSION = "tetherloop-mock 0.1.0"
+ARM_TOKEN_VALID_MS = 3000
+REPLY_CACHE_SIZE = 16  # protocol/SPEC.md section 9
+
+
+class ReplyCache:
+    """The last REPLY_CACHE_SIZE replies by request seq, with the request's type id."""
+
+    def __init__(self, size: int = REPLY_CACHE_SIZE):
+        self._size = size
+        self._entries: OrderedDict[int, tuple[int, bytes]] = OrderedDict()
+
+    def store(self, seq: int, type_id: int, reply: bytes) -> None:
+        """Cache a reply; it replaces any entry of the same seq; the oldest entries go."""
+        self._entries[seq] = (type_id, reply)
+        self._entries.move_to_end(seq)
+        while len(self._entries) > self._size:
+            self._entries.popitem(last=False)
+
+    def lookup(self, seq: int, type_id: int) -> bytes | None:
+        """The cached reply that answers a retry of (seq, type_id), or None."""
+        hit = self._entries.get(seq)
+        return hit[1] if hit is not None else None
+
+    def clear(self) -> None:
+        self._entries.clear()
+
+
+_Handler = Callable[["ProtocolServer", codec.Frame, object], None]
+_handlers: dict[type, _Handler] = {}
+
+
+def handles(cls: type) -> Callable[[_Handler], _Handler]:
+    """Register the decorated method as the handler of host message ``cls``."""
+    def deco(fn: _Handler) -> _Handler:
+        assert cls not in _handlers, f"two handlers for {cls.__name__}"
+        _handlers[cls] = fn
+        return fn
+    return deco
+
+
+class ProtocolServer:
+    """Serves the host's requests for one board (``fw``, a :class:`~.board.Firmware`)."""
+
+    def __init__(self, fw, rng):
+        self.fw = fw
+        self._rng = rng  # draws the arming tokens
+        self.decoder = codec.StreamDecoder()
+        self.pending: list = []  # frames received, handled at the next tick
+        self.cache = ReplyCache()
+        self.token: int | None = None  # the arming token issued and not yet used
+        self._token_expiry = 0.0
+        self.last_rx_link = -math.inf  # link time of the last intact host frame (watchdog)
+        self.prev_rx_link = -math.inf  # ... and of the one before (arming needs it recent)
+
+    def receive(self, data: bytes) -> None:
+        if data:
+            self.pending.extend(self.decoder.feed(data))
+
+    def handle_pending(self) -> None:
+        frames, self.pending = self.pending, []
+        for f in frames:
+            self.handle(f)
+
+    def handle(self, frame) -> None:
+        """protocol/SPEC.md 11.1, steps 1-11; the reply is cached under the request's seq."""
+        fw = self.fw
+        fw.stats["frames_in"] += 1
+        out = fw.outbox
+        out.begin_request()
+        try:
+            self._process(frame)
+        finally:
+            deferred = out.end_request()
+        if out.last_reply:
+            self.cache.store(frame.seq, frame.type_id, out.last_reply)
+        for data in deferred:
+            out.queue(data)
+
+    def _process(self, frame) -> None:
+        fw = self.fw
+        if frame.major != M.PROTOCOL_MAJOR:
+            self._refuse(frame, RefuseCode.VERSION,
+                         f"protocol major {frame.major} not supported; device speaks "
+                         f"{M.PROTOCOL_MAJOR}.{M.PROTOCOL_MINOR}", frame.version)
+            return
+        self.prev_rx_link = self.last_rx_link
+        self.last_rx_link = fw.link_time  # any intact frame refreshes the watchdog
+        if frame.flags & M.FLAG_RETRY:
+            cached = self.cache.lookup(frame.seq, frame.type_id)
+            if cached is not None:
+                fw.stats["replies_from_cache"] += 1
+                fw.outbox.queue(cached)
+                return
+        spec = M.MESSAGES.get(frame.type_id)
+        if spec is None:
+            self._refuse(frame, RefuseCode.UNKNOWN_TYPE,
+                         f"unknown message type 0x{frame.type_id:02x}", frame.type_id)
+            return
+        if spec.sender != "host":
+            self._refuse(frame, RefuseCode.NOT_A_REQUEST,
+                         f"{spec.name} is sent by a device, not accepted by one", frame.type_id)
+            return
+        msg = frame.msg
+        if msg is None:
+            if spec.cls is M.Kill:  # never refused: missing fields count as 0
+                msg = M.Kill(reason=0, value=0.0)
+            else:
+                self._refuse(frame, RefuseCode.MALFORMED, frame.error or "malformed payload")
+                return
+        if isinstance(msg, M.Keepalive):
+            return
+        fw.stats["requests"] += 1
+        st = fw.state
+        if st not in spec.legal_in:
+            if st == DeviceState.KILLED:
+                code, text = RefuseCode.KILL_LATCHED, "a kill is latched: send kill_clear first"
+            elif st == DeviceState.RUNNING and spec.cls in (M.SettingWrite, M.ExperimentStart):
+                code, text = RefuseCode.BUSY, "an experiment is running: stop it first"
+            else:
+                code, text = RefuseCode.WRONG_STATE, f"{spec.name} not legal in state {st.name}"
+            self._refuse(frame, code, text, int(st))
+            return
+        HANDLERS[spec.cls](self, frame, msg)
+
+    # -- replies
+
+    def _reply(self, frame, msg) -> None:
+        self.fw.outbox.send(msg, frame.seq, reply=True)
+
+    def _refuse(self, frame, code: RefuseCode, text: str, detail: int = 0) -> None:
+        self.fw.stats["refused"] += 1
+        self._reply(frame, M.Refuse(refused_type=frame.type_id & 0xFF, code=int(code),
+                                    detail=detail & 0xFFFFFFFF, text=text[:64]))
+
+    def _ack(self, frame, state: DeviceState | None = None) -> None:
+        """Ack with the state now, or with the state the request leads to (the reply precedes
+        the request's events)."""
+        st = self.fw.state if state is None else state
+        self._reply(frame, M.Ack(acked_type=frame.type_id, state=int(st)))
+
+    # -- handlers, one per host message of the table
+
+    @handles(M.Hello)
+    def _on_hello(self, frame, msg) -> None:
+        fw = self.fw
+        self.cache.clear()
+        caps = (M.Capability.RELAY | M.Capability.STEP | M.Capability.HOLD
+                | M.Capability.PERSIST | M.Capability.KILL_BUTTON
+                | M.Capability.BACK_CALCULATION | M.Capability.RELAY_ADJUST)
+        axes = tuple(M.AxisInfo(a.axis_id, sum(1 << LOOP_ID[lv] for lv in a.levels))
+                     for a in sorted(fw.controllers, key=lambda x: x.axis_id))
+        self._reply(frame, M.HelloReply(
+            device_id=fw.scenario.device_id[:64], firmware_version=FIRMWARE_VERSION,
+            protocol_major=M.PROTOCOL_MAJOR, protocol_minor=M.PROTOCOL_MINOR,
+            loop_rate_hz=fw.loop_rate_hz, capabilities=int(caps),
+            setting_count=len(fw.settings), axes=axes))
+
+    @handles(M.Kill)
+    def _on_kill(self, frame, msg) -> None:
+        reason = msg.reason
+        name = KillReason(reason).name.lower() if reason in KillReason._value2member_map_ \
+            else f"reason {reason}"
+        self.fw._kill(reason, msg.value, 0.0, NO_AXIS, f"host kill: {name}")
+        self._ack(frame)
+
+    @handles(M.SettingDescribe)
+    def _on_setting_describe(self, frame, msg) -> None:
+        defs = self.fw.settings.defs
+        if not 0 <= msg.index < len(defs):
+            self._refuse(frame, RefuseCode.UNKNOWN_SETTING,
+                         f"no setting at index {msg.index}; indexes 0..{len(defs) - 1}",
+                         msg.index)
+            return
+        d = defs[msg.index]
+        self._reply(frame, M.SettingInfo(index=d.index, setting_id=d.setting_id, name=d.name,
+                                         type=int(d.type), unit=d.unit, minimum=d.minimum,
+                                         maximum=d.maximum, default=d.default, flags=d.flags))
+
+    @handles(M.SettingRead)
+    def _on_setting_read(self, frame, msg) -> None:
+        settings = self.fw.settings
+        d = settings.by_id.get(msg.setting_id)
+        if d is None:
+            self._refuse(frame, RefuseCode.UNKNOWN_SETTING, f"no setting with id {msg.setting_id}",
+                         msg.setting_id)
+            return
+        self._reply(frame, M.SettingValue(setting_id=d.setting_id, value=settings.values[d.name]))
+
+    @handles(M.SettingWrite)
+    def _on_setting_write(self, frame, msg) -> None:
+        fw = self.fw
+        d = fw.settings.by_id.get(msg.setting_id)
+        if d is None:
+            self._refuse(frame, RefuseCode.UNKNOWN_SETTING, f"no setting with id {msg.setting_id}",
+                         msg.setting_id)
+            return
+        if d.flags & M.SettingFlags.READ_ONLY:
+            self._refuse(frame, RefuseCode.READ_ONLY, f"{d.name} is read-only", d.setting_id)
+            return
+        if d.flags & M.SettingFlags.DISARMED_ONLY and fw.state != DeviceState.DISARMED:
+            self._refuse(frame, RefuseCode.WRONG_STATE, f"{d.name} may only be written while "
+                         f"disarmed", d.setting_id)
+            return
+        err = fw.settings.check(d, msg.value)
+        if err:
+            self._refuse(frame, RefuseCode.OUT_OF_BOUNDS, err, d.setting_id)
+            return
+        fw.settings.values[d.name] = float(msg.value)
+        fw._apply_setting(d.name)
+        self._reply(frame, M.SettingValue(setting_id=d.setting_id,
+                                          value=fw.settings.values[d.name]))
+
+    @handles(M.SettingsPersist)
+    def _on_settings_persist(self, frame, msg) -> None:
+        fw = self.fw
+        values = dict(fw.settings.values)
+        if fw.on_persist is not None:
+            try:
+                fw.on_persist(values)  # the store file (see mock_device.store)
+            except OSError as exc:
+                self._refuse(frame, RefuseCode.STORAGE, f"persist failed: {exc}")
+                return
+        fw.persisted = values  # the mock's non-volatile copy
+        self._ack(frame)
+
+    @handles(M.ArmRequest)
+    def _on_arm_request(self, frame, msg) -> None:
+        fw = self.fw
+        self.token = int(self._rng.integers(1, 0xFFFFFFFF))
+        self._token_expiry = fw.link_time + ARM_TOKEN_VALID_MS / 1000.0
+        self._reply(frame, M.ArmChallenge(token=self.token, valid_ms=ARM_TOKEN_VALID_MS))
+
+    @handles(M.ArmConfirm)
+    def _on_arm_confirm(self, frame, msg) -> None:
+        fw = self.fw
+        token, self.token = self.token, None  # one confirm per token, accepted or refused
+        if token is None:
+            self._refuse(frame, RefuseCode.INTERLOCK, "no arming challenge: send arm_request")
+            return
+        if fw.link_time > self._token_expiry:
+            self._refuse(frame, RefuseCode.INTERLOCK, "arming token expired: request a new one")
+            return
+        if msg.response != (token ^ 0xFFFFFFFF):
+            self._refuse(frame, RefuseCode.INTERLOCK, "wrong response to the arming token")
+            return
+        if msg.operator_confirmed != 1:
+            self._refuse(frame, RefuseCode.INTERLOCK, "operator did not confirm the cautions")
+            return
+        if fw.link_time - self.prev_rx_link > fw.settings.values["watchdog_s"]:
+            self._refuse(frame, RefuseCode.NO_KEEPALIVE,
+                         "no host frame within watchdog_s before arming: send keepalives")
+            return
+        self._ack(frame, DeviceState.ARMED)
+        fw._arm()
+
+    @handles(M.Disarm)
+    def _on_disarm(self, frame, msg) -> None:
+        fw = self.fw
+        after = fw.state if fw.state in (DeviceState.DISARMED, DeviceState.KILLED) \
+            else DeviceState.DISARMED
+        self._ack(frame, after)
+        fw.disarm()
+
+    @handles(M.ExperimentStart)
+    def _on_experiment_start(self, frame, msg) -> None:
+        fw = self.fw
+        code, text = check_request(msg, fw.axis_by_id)
+        if code is not None:
+            self._refuse(frame, code, text)
+            return
+        self._ack(frame, DeviceState.RUNNING)
+        fw._begin_experiment(msg)
+
+    @handles(M.ExperimentStop)
+    def _on_experiment_stop(self, frame, msg) -> None:
+        fw = self.fw
+        after = DeviceState.ARMED if fw.state == DeviceState.RUNNING else fw.state
+        self._ack(frame, after)
+        if fw.exp is not None:  # any tag (protocol/SPEC.md 13.1)
+            fw._finish(FinishReason.STOPPED)
+
+    @handles(M.ExperimentAdjust)
+    def _on_experiment_adjust(self, frame, msg) -> None:
+        e = self.fw.exp
+        code, text = check_adjust(msg, e)
+        if code is not None:
+            self._refuse(frame, code, text)
+            return
+        e.amplitude, e.hysteresis, e.bias = msg.amplitude, msg.hysteresis, msg.bias
+        self._ack(frame)
+
+    @handles(M.KillClear)
+    def _on_kill_clear(self, frame, msg) -> None:
+        fw = self.fw
+        after = DeviceState.DISARMED if fw.state == DeviceState.KILLED else fw.state
+        self._ack(frame, after)
+        fw.clear_kill()
+
+    @handles(M.TelemetryConfig)
+    def _on_telemetry_config(self, frame, msg) -> None:
+        fw = self.fw
+        if msg.rate_hz > fw.loop_rate_hz:
+            self._refuse(frame, RefuseCode.BAD_PARAMETER,
+                         f"rate_hz {msg.rate_hz} above the loop rate {fw.loop_rate_hz}")
+            return
+        lacking = [i for i in range(8) if msg.axis_mask & (1 << i) and i not in fw.axis_by_id]
+        if lacking:
+            self._refuse(frame, RefuseCode.UNSUPPORTED,
+                         f"axis_mask names axes this board lacks: {lacking}; it has "
+                         f"{', '.join(a.name for a in fw.controllers)}", msg.axis_mask)
+            return
+        fw.configure_telemetry(msg.rate_hz, tuple(a.name for a in fw.controllers
+                                                  if msg.axis_mask & (1 << a.axis_id)),
+                               msg.loop)
+        self._ack(frame)
+
+
+def _dispatch_table() -> dict[type, _Handler]:
+    """Message class -> handler for every message the host sends (Keepalive has no reply and
+    is handled in the processing steps); refuses to build if the table and the handlers
+    disagree."""
+    requests = [s.cls for s in M.MESSAGES.values() if s.sender == "host" and s.cls is not M.Keepalive]
+    missing = [c.__name__ for c in requests if c not in _handlers]
+    extra = [c.__name__ for c in _handlers if c not in requests]
+    if missing or extra:
+        raise ImportError(f"mock_device.firmware.server: host messages without a handler: "
+                          f"{missing or 'none'}; handlers of no host message: {extra or 'none'}. "
+                          f"Add an @handles method per host message of protocol/messages.py")
+    return {c: _handlers[c] for c in requests}
+
+
+HANDLERS = _dispatch_table()
