@@ -92,6 +92,59 @@ class AnalysisInput:
         return cls(**kw)
 
 
+# Samples lost on the link are bridged on the board's tick grid (the analysis needs uniform
+# samples): the measurement linearly, the controller output by holding its last value (it is
+# piecewise constant under a relay). A record is refused when more than half of its samples are
+# missing or one gap is longer than MAX_GAP_TICKS: past that the waveform between the samples is
+# guessed, not measured (common practice, no source).
+MAX_BRIDGED_FRACTION = 0.5
+MAX_GAP_TICKS = 20
+
+
+@dataclass(frozen=True)
+class Bridged:
+    """Samples on the full tick grid, and how many of them were bridged."""
+
+    t_us: np.ndarray
+    y: np.ndarray
+    u: np.ndarray
+    bridged: int
+    longest_gap_ticks: int
+
+
+def bridge_gaps(t_us: np.ndarray, y: np.ndarray, u: np.ndarray, tick_us: float) -> Bridged:
+    """Fill samples lost on the link on the board's tick grid.
+
+    Parameters
+    ----------
+    t_us : ndarray
+        Board time stamps (µs), increasing, at multiples of ``tick_us`` from the first.
+    y, u : ndarray
+        Measurement and controller output at those times.
+    tick_us : float
+        The board's tick (µs).
+
+    Returns
+    -------
+    Bridged
+        Unchanged arrays when nothing was lost; else every tick from the first to the last
+        sample, ``y`` interpolated linearly and ``u`` held, with the count of bridged samples
+        and the longest gap (in ticks, 0 when none).
+    """
+    t_us = np.asarray(t_us)
+    if t_us.size < 2:
+        return Bridged(t_us, np.asarray(y), np.asarray(u), 0, 0)
+    k = np.rint((t_us - t_us[0]) / tick_us).astype(np.int64)
+    steps = np.diff(k)
+    if np.all(steps == 1):
+        return Bridged(t_us, np.asarray(y), np.asarray(u), 0, 0)
+    full = np.arange(int(k[-1]) + 1)
+    y_full = np.interp(full, k, y)
+    u_full = np.asarray(u)[np.searchsorted(k, full, side="right") - 1]
+    t_full = t_us[0] + np.rint(full * tick_us).astype(np.int64)
+    return Bridged(t_full, y_full, u_full, int(full.size - k.size), int(steps.max() - 1))
+
+
 def columns_from_telemetry(samples: Iterable[tuple[float, Any]]) -> dict[str, np.ndarray]:
     """Long-format columns from ``(host_time_s, Telemetry)`` pairs, as :func:`read_session`
     returns them (one row per axis entry; f32 wire values as exact float64)."""
@@ -161,12 +214,14 @@ def relay_record_from_rows(columns: dict[str, np.ndarray], analysis_input: dict)
     -------
     RelayRecord
         ``t_s = time_us * 1e-6``, ``y = measurement``, ``u = output`` (float64) of the rows of
-        that axis inside the window, in time order, duplicates of a device time dropped.
+        that axis inside the window, in time order, duplicates of a device time dropped, samples
+        lost on the link bridged on the tick grid (:func:`bridge_gaps`).
 
     Raises
     ------
     LogbookError
-        The analysis input lacks a key or the window holds no rows.
+        The analysis input lacks a key, the window holds no rows, or too many of its samples
+        were lost to bridge.
     """
     from agent.analysis.records import RelayRecord
 
@@ -182,9 +237,16 @@ def relay_record_from_rows(columns: dict[str, np.ndarray], analysis_input: dict)
     keep = np.ones(t_us.size, dtype=bool)
     keep[1:] = np.diff(t_us) > 0  # a sample logged twice (retransmission) counts once
     idx = order[keep]
-    t_s = t_us[keep].astype(np.float64) * 1e-6
     y = np.asarray(columns["measurement"][mask][idx], dtype=np.float64)
     u = np.asarray(columns["output"][mask][idx], dtype=np.float64)
+    br = bridge_gaps(t_us[keep], y, u, ai.sample_time_s * 1e6)
+    if br.bridged > MAX_BRIDGED_FRACTION * br.t_us.size or br.longest_gap_ticks > MAX_GAP_TICKS:
+        raise LogbookError(
+            f"{br.bridged} of {br.t_us.size} samples of the analysed window were lost on the "
+            f"link (longest gap {br.longest_gap_ticks} ticks); at most "
+            f"{MAX_BRIDGED_FRACTION:.0%} and gaps of {MAX_GAP_TICKS} ticks can be bridged. "
+            "Check the cable and the link's error counts, or lower the telemetry load.")
+    t_s, y, u = br.t_us.astype(np.float64) * 1e-6, br.y, br.u
     return RelayRecord(t_s=t_s, y=y, u=u, setpoint=ai.setpoint, amplitude=ai.amplitude,
                        hysteresis=ai.hysteresis, bias=ai.bias, sample_time_s=ai.sample_time_s,
                        sampling_delay_s=ai.sampling_delay_s, integrating=ai.integrating,

@@ -38,10 +38,12 @@ from ..stand import Stand
 
 POLL_S = 0.02
 IDLE_TELEMETRY_HZ = 50
-# the largest share of a record's samples that may be lost on the link before the record is
-# refused: more and a step's peak or a hold's spread is no longer measured but guessed
-# (common practice, no source)
-MAX_MISSING_FRACTION = 0.05
+# the largest share of a hold's or step's samples that may be lost on the link before the record
+# is refused (the relay's own limits are in agent.logbook.records): past it, or past a single
+# gap of MAX_GAP_FRACTION of the record, a step's peak or a hold's spread is no longer measured
+# but guessed (common practice, no source)
+MAX_MISSING_FRACTION = 0.5
+MAX_GAP_FRACTION = 0.05
 
 
 def ids(lp: LoopPlan) -> tuple[int, int]:
@@ -209,14 +211,25 @@ class Experiment:
                                     f"({got:.2f} s of board time in {limit:.0f} s); check "
                                     "the link")
 
-    def missing_samples(self) -> tuple[int, int]:
-        """(received, missing) samples of this axis and level, from the board's time stamps:
-        a step of n ticks between two samples means n - 1 were lost on the link."""
+    def missing_samples(self) -> tuple[int, int, int]:
+        """(received, missing, longest gap) samples of this axis and level, from the board's
+        time stamps: a step of n ticks between two samples means n - 1 were lost on the link."""
         t_us = np.sort(self.loop_columns()["time_us"])
         if t_us.size < 2:
-            return int(t_us.size), 0
-        ticks = np.rint(np.diff(t_us) * self.stand.info.loop_rate_hz * 1e-6)
-        return int(t_us.size), int(np.clip(ticks - 1, 0, None).sum())
+            return int(t_us.size), 0, 0
+        lost = np.clip(np.rint(np.diff(t_us) * self.stand.info.loop_rate_hz * 1e-6) - 1, 0, None)
+        return int(t_us.size), int(lost.sum()), int(lost.max())
+
+    def samples_problem(self, what: str) -> str | None:
+        """Why the record cannot be judged for lost samples, or None when it can."""
+        received, missing, gap = self.missing_samples()
+        total = received + missing
+        if missing > MAX_MISSING_FRACTION * total or gap > MAX_GAP_FRACTION * total:
+            return (f"{missing} of {total} samples of the {what} were lost on the link "
+                    f"(longest gap {gap} ticks; at most {MAX_MISSING_FRACTION:.0%} and gaps of "
+                    f"{MAX_GAP_FRACTION:.0%} of the record can be judged); check the cable and "
+                    "the link's error counts")
+        return None
 
     def loop_columns(self) -> dict:
         """The buffer's columns of this axis and loop level."""

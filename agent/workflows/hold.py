@@ -12,8 +12,7 @@ from protocol.messages import Axis, ExperimentKind, Loop
 from ..errors import WorkflowError
 from ..plan import LoopPlan, Plan
 from ..stand import Stand
-from .experiment import (MAX_MISSING_FRACTION, Experiment, current_measurement,
-                         full_rate_telemetry, ids, wait)
+from .experiment import Experiment, current_measurement, full_rate_telemetry, ids, wait
 from .results import Progress, ProgressFn, Stage, quiet
 
 HOLD_S = {"rate": 0.5, "angle": 1.0, "heave": 2.0}
@@ -55,15 +54,21 @@ def noise_check(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = q
     if len(y) < 20:
         exp.finish({"error": "too few samples"})
         raise WorkflowError(f"{lp.key}: the hold gave only {len(y)} samples; check telemetry")
-    received, missing = exp.missing_samples()
-    if missing > MAX_MISSING_FRACTION * (received + missing):
-        msg = (f"{lp.key}: {missing} of {received + missing} samples of the hold were lost on "
-               f"the link (more than {MAX_MISSING_FRACTION:.0%}); check the cable and the "
-               "link's error counts")
-        exp.finish({"error": msg})
-        raise WorkflowError(msg)
+    received, missing, _ = exp.missing_samples()
+    lost = exp.samples_problem("hold")
+    if lost:
+        exp.finish({"error": lost})
+        raise WorkflowError(f"{lp.key}: {lost}")
     half = len(y) // 2
-    noise = float(np.std(np.diff(y[half:])) / math.sqrt(2))
+    # successive differences of samples one tick apart only (samples lost on the link would
+    # add the loop's motion over the gap to the noise)
+    t_half = cols["time_us"][half:]
+    dy = np.diff(y[half:])[np.rint(np.diff(t_half) * stand.info.loop_rate_hz * 1e-6) == 1]
+    if dy.size < 10:
+        exp.finish({"error": "too few consecutive samples"})
+        raise WorkflowError(f"{lp.key}: the hold gave only {dy.size} pairs of consecutive "
+                            "samples; check the link")
+    noise = float(np.std(dy) / math.sqrt(2))
     trim = float(np.mean(u[half:]))
     result = {"noise_std": noise, "trim": trim, "setpoint": setpoint, "samples": int(len(y)),
               "samples_missing": missing}

@@ -18,7 +18,7 @@ from protocol.messages import Axis, DeviceState, ExperimentKind
 from protocol.timing import sampling_delay_s
 
 from ..errors import WorkflowError
-from ..logbook.records import AnalysisInput
+from ..logbook.records import MAX_BRIDGED_FRACTION, MAX_GAP_TICKS, AnalysisInput, bridge_gaps
 from ..plan import LoopPlan, Plan
 from ..relayramp import RelaySupervisor
 from ..stand import Stand
@@ -138,15 +138,18 @@ def relay_experiment(stand: Stand, lp: LoopPlan, plan: Plan, *, trim: float, hys
     t_axis = cols["time_us"][sel_axis]
     a, b = decision.window
     rate = stand.info.loop_rate_hz
-    gaps = int(np.count_nonzero(np.diff(t_axis[a:b + 1]) > 1.5 * 1e6 / rate))
-    if gaps:
+    win = np.arange(a, b + 1)
+    br = bridge_gaps(t_axis[win], cols["measurement"][sel_axis][win],
+                     cols["output"][sel_axis][win], 1e6 / rate)
+    if br.bridged > MAX_BRIDGED_FRACTION * br.t_us.size or br.longest_gap_ticks > MAX_GAP_TICKS:
         bad = stand.link.stats.bad_frames - bad_before
         cause = (f"the host rejected {bad} damaged frame(s) (CRC or framing errors) meanwhile: "
                  "check the cable, its shielding and the baud rate" if bad else
                  "no damaged frames arrived, so the host or the link did not keep up: use a "
                  "faster link, or a slower simulation clock for the mock")
-        msg = (f"{lp.key}: {gaps} telemetry gap(s) in the analysed periods: samples were lost "
-               f"on the link; {cause}.")
+        msg = (f"{lp.key}: {br.bridged} of {br.t_us.size} samples of the analysed periods were "
+               f"lost on the link (longest gap {br.longest_gap_ticks} ticks; at most "
+               f"{MAX_BRIDGED_FRACTION:.0%} and {MAX_GAP_TICKS} ticks can be bridged); {cause}.")
         exp.finish({"error": msg, "relay": {"adjustments": adjustments}})
         raise WorkflowError(msg)
     ai = AnalysisInput(
@@ -167,7 +170,8 @@ def relay_experiment(stand: Stand, lp: LoopPlan, plan: Plan, *, trim: float, hys
                "amplitude_seen": decision.amplitude_seen, "period_s": decision.period_s,
                "adjustments": adjustments, "note": str(decision.reason),
                "final_amplitude": decision.amplitude, "final_bias": decision.bias,
-               "target_amplitude": target}
+               "target_amplitude": target, "samples": int(br.t_us.size),
+               "samples_bridged": br.bridged}
     return RelayRun(ai, summary, cross_coupling(cols, axis_i, ai), cols, exp)
 
 

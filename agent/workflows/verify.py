@@ -13,7 +13,7 @@ from protocol.messages import ExperimentKind
 from .. import analysis
 from ..plan import LoopPlan, Plan
 from ..stand import Stand
-from .experiment import MAX_MISSING_FRACTION, Experiment, ids
+from .experiment import Experiment, ids
 from .results import Progress, ProgressFn, Stage, finite, quiet
 
 
@@ -138,11 +138,10 @@ def verify_step(stand: Stand, lp: LoopPlan, plan: Plan, cand, *, setpoint: float
     predicted = {"overshoot": finite(pred.overshoot), "rise_s": finite(pred.rise_s),
                  "settling_s": finite(pred.settling_s), "iae": finite(pred.iae_setpoint * sp.step)}
     problems, allowance = judge_step(measured, predicted, plan, noise_std, sp.step)
-    received, missing = exp.missing_samples()
-    if missing > MAX_MISSING_FRACTION * (received + missing):
-        problems.append(f"{missing} of {received + missing} samples of the step were lost on "
-                        f"the link (more than {MAX_MISSING_FRACTION:.0%}): the response cannot "
-                        "be judged; check the cable and the link's error counts")
+    received, missing, _ = exp.missing_samples()
+    lost = exp.samples_problem("step")
+    if lost:
+        problems.append(lost)
     curve = {"t_s": [float(x) for x in pred.t_s],
              "y": [float(setpoint + sp.step * v) for v in pred.y_setpoint],
              "t_offset_s": sp.step_at_s}
