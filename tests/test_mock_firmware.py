@@ -268,6 +268,48 @@ def test_retried_setting_write_is_not_applied_twice_and_hello_clears_the_cache()
     assert w.fw.settings.get("roll.rate.kp") == pytest.approx(0.7)
 
 
+def test_a_retry_of_another_type_is_executed_not_answered_from_the_cache():
+    # protocol/SPEC.md 11.1 step 7: a cached reply answers only a retry of the same seq AND type
+    w = in_state(S.DISARMED)
+    w.keepalive()
+    w.tick()
+    ch = w.request(M.ArmRequest())
+    seq = w.seq
+    ack = w.request(M.ArmConfirm(response=ch.token ^ 0xFFFFFFFF, operator_confirmed=1))
+    assert isinstance(ack, M.Ack) and w.fw.state == S.ARMED
+    kp = setting_id(w.fw, "roll.rate.kp")
+    r = w.request(M.SettingRead(setting_id=kp), flags=M.FLAG_RETRY, seq=seq)
+    assert isinstance(r, M.SettingValue) and r.setting_id == kp
+    assert r.value == pytest.approx(w.fw.settings.get("roll.rate.kp"))
+    assert w.fw.stats["replies_from_cache"] == 0
+
+
+def test_a_kill_is_never_answered_from_the_cache():
+    # a Kill whose seq meets a cached reply of another request is executed; so is a retry of
+    # a Kill already executed (every kill acts, protocol/SPEC.md 12.2)
+    w = in_state(S.RUNNING)
+    seq = w.seq
+    ok = w.request(M.ExperimentAdjust(tag=7, amplitude=0.06, hysteresis=0, bias=0))
+    assert isinstance(ok, M.Ack) and ok.state == S.RUNNING
+    r = w.request(M.Kill(reason=M.KillReason.HOST_MONITOR, value=2.0), flags=M.FLAG_RETRY,
+                  seq=seq)
+    assert isinstance(r, M.Ack) and r.acked_type == M.BY_CLASS[M.Kill].type_id
+    assert r.state == S.KILLED and w.fw.state == S.KILLED
+    assert all(v == 0.0 for v in w.fw.outputs.values())
+    assert w.kinds().count(EK.KILL_TRIPPED) == 1
+    # the same Kill again (same seq, same type, retry flag): executed again, another trip
+    r = w.request(M.Kill(reason=M.KillReason.HOST_MONITOR, value=2.0), flags=M.FLAG_RETRY,
+                  seq=seq)
+    assert isinstance(r, M.Ack) and r.state == S.KILLED
+    assert w.kinds().count(EK.KILL_TRIPPED) == 2
+    assert w.fw.stats["replies_from_cache"] == 0
+    # after a clear and a new arming, a retried Kill of an old seq still kills
+    w.request(M.KillClear())
+    assert isinstance(w.arm(), M.Ack)
+    w.request(M.Kill(reason=M.KillReason.HOST_OPERATOR, value=0.0), flags=M.FLAG_RETRY, seq=seq)
+    assert w.fw.state == S.KILLED
+
+
 # ------------------------------------------------------------------ arming interlock
 
 

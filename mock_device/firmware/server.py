@@ -1,11 +1,12 @@
 """The board's protocol v1 server: frames from the host -> checks -> one handler per request.
 
 Each frame is processed as protocol/SPEC.md 11.1 says: a foreign major is refused; any intact
-frame refreshes the watchdog; a retry is answered from the reply cache (section 9); unknown
-types, device-only types and malformed payloads are refused (a malformed Kill is still a kill);
-a Keepalive has no reply; a request not legal in the present state is refused (the message
-table's ``legal_in``); otherwise its handler checks its own parameters, replies and acts. A reply
-precedes the events its request causes.
+frame refreshes the watchdog; a retry of the same seq and type is answered from the reply cache
+(section 9), except a Kill, which is executed every time it arrives (a kill done twice is
+harmless, a kill skipped is not); unknown types, device-only types and malformed payloads are
+refused (a malformed Kill is still a kill); a Keepalive has no reply; a request not legal in
+the present state is refused (the message table's ``legal_in``); otherwise its handler checks
+its own parameters, replies and acts. A reply precedes the events its request causes.
 
 The handlers are found through :data:`HANDLERS`, built from the message table
 (protocol/messages.py): one entry per message the host sends, so a message added to the table
@@ -32,10 +33,14 @@ from .experiment import check_adjust, check_request
 FIRMWARE_VERSION = "tetherloop-mock 0.1.0"
 ARM_TOKEN_VALID_MS = 3000
 REPLY_CACHE_SIZE = 16  # protocol/SPEC.md section 9
+_KILL = M.BY_CLASS[M.Kill].type_id
 
 
 class ReplyCache:
-    """The last REPLY_CACHE_SIZE replies by request seq, with the request's type id."""
+    """The last REPLY_CACHE_SIZE replies by request seq, with the request's type id
+    (protocol/SPEC.md 9). A reply answers a retry only of the same seq AND type: after the host's
+    seq has wrapped, or under a new session, a seq can meet the cached reply of another request.
+    """
 
     def __init__(self, size: int = REPLY_CACHE_SIZE):
         self._size = size
@@ -51,7 +56,7 @@ class ReplyCache:
     def lookup(self, seq: int, type_id: int) -> bytes | None:
         """The cached reply that answers a retry of (seq, type_id), or None."""
         hit = self._entries.get(seq)
-        return hit[1] if hit is not None else None
+        return hit[1] if hit is not None and hit[0] == type_id else None
 
     def clear(self) -> None:
         self._entries.clear()
@@ -117,7 +122,7 @@ class ProtocolServer:
             return
         self.prev_rx_link = self.last_rx_link
         self.last_rx_link = fw.link_time  # any intact frame refreshes the watchdog
-        if frame.flags & M.FLAG_RETRY:
+        if frame.flags & M.FLAG_RETRY and frame.type_id != _KILL:  # a kill always acts
             cached = self.cache.lookup(frame.seq, frame.type_id)
             if cached is not None:
                 fw.stats["replies_from_cache"] += 1
@@ -351,7 +356,8 @@ def _dispatch_table() -> dict[type, _Handler]:
     """Message class -> handler for every message the host sends (Keepalive has no reply and
     is handled in the processing steps); refuses to build if the table and the handlers
     disagree."""
-    requests = [s.cls for s in M.MESSAGES.values() if s.sender == "host" and s.cls is not M.Keepalive]
+    requests = [s.cls for s in M.MESSAGES.values()
+                if s.sender == "host" and s.cls is not M.Keepalive]
     missing = [c.__name__ for c in requests if c not in _handlers]
     extra = [c.__name__ for c in _handlers if c not in requests]
     if missing or extra:
