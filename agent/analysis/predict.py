@@ -223,7 +223,6 @@ class LoopSim:
             else:
                 h = self.tu / 100
         self.h = float(h)
-        self.board_rate = sample_time_s is not None and abs(self.h - sample_time_s) < 1e-15
         # the loop model holds the board's half tick already; the simulation adds h/2 again
         sim_delay = max(delay - self.h / 2, 0.0)
         dm = zoh_discretize(num, den, sim_delay, self.h)
