@@ -81,7 +81,7 @@ class _Pending:
     """One request waiting for its reply: the reader thread fills ``reply`` and sets ``event``;
     a lost or closed link sets ``event`` with ``reply`` still None."""
 
-    __slots__ = ("seq", "frame", "event", "reply", "sent_at", "first_sent_at")
+    __slots__ = ("seq", "frame", "event", "reply", "sent_at")
 
     def __init__(self, seq: int, frame: bytes):
         self.seq = seq
@@ -89,7 +89,6 @@ class _Pending:
         self.event = threading.Event()
         self.reply: Any = None
         self.sent_at = 0.0
-        self.first_sent_at = 0.0
 
 
 def _errno_of(exc: BaseException, text: str) -> int | None:
@@ -197,7 +196,6 @@ class Link:
         self._event_subs: list[Callable[[float, Event], None]] = []
         self._lost_subs: list[Callable[[str], None]] = []
         self._latencies: deque[float] = deque(maxlen=200)
-        self._last_tx = 0.0
         self._stop = threading.Event()
         self._closed = False
         self.lost_reason: str | None = None
@@ -248,7 +246,6 @@ class Link:
             except (serial.SerialException, OSError) as exc:
                 self._mark_lost(f"write failed: {exc}")
                 raise LinkError(f"the link to {self.port_name} is lost: {exc}") from None
-            self._last_tx = self.clock()
             self.stats.frames_out += 1
             self.stats.bytes_out += len(data)
 
@@ -306,8 +303,6 @@ class Link:
                 if attempt:
                     self.stats.retries += 1
                 pend.sent_at = self.clock()
-                if attempt == 0:
-                    pend.first_sent_at = pend.sent_at
                 self._write(frame)
                 if pend.event.wait(timeout_s):
                     if pend.reply is None:  # woken by a loss or by close(), not by a reply
