@@ -31,16 +31,26 @@ def caution_text() -> str:
     return "\n".join(f"  {i}. {c}" for i, c in enumerate(CAUTIONS, 1))
 
 
+def _schema_default(attr: str) -> float:
+    from .plan import limit_default_si  # late: agent.plan imports this module
+    return limit_default_si(attr)
+
+
 @dataclass(frozen=True)
 class Limits:
     """Kill thresholds, SI units. Angles and rates are absolute; heave is the excursion from the
-    height at the start of the experiment."""
+    height at the start of the experiment.
 
-    angle_rad: float = math.radians(30.0)
-    rate_rad_s: float = math.radians(400.0)
-    heave_m: float = 0.25
-    climb_rate_m_s: float = 1.0
-    saturation_s: float = 1.5
+    The defaults are the plan schema's (``agent.plan.SCHEMA``, the [limits] keys converted to
+    SI): one definition for plan files, the console and the host monitor. They are read when a
+    Limits is made, so that this module and agent.plan may import each other in either order.
+    """
+
+    angle_rad: float = field(default_factory=lambda: _schema_default("angle_rad"))
+    rate_rad_s: float = field(default_factory=lambda: _schema_default("rate_rad_s"))
+    heave_m: float = field(default_factory=lambda: _schema_default("heave_m"))
+    climb_rate_m_s: float = field(default_factory=lambda: _schema_default("climb_rate_m_s"))
+    saturation_s: float = field(default_factory=lambda: _schema_default("saturation_s"))
 
     def threshold(self, axis: int, loop: int) -> float:
         if loop == Loop.ANGLE:

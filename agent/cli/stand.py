@@ -367,10 +367,12 @@ def cmd_settings(args) -> int:
 
 
 def _common(p, port=True):
+    from . import validate
     if port:
         p.add_argument("--port", required=True,
                        help="serial device path or pyserial URL (socket://host:port)")
-    p.add_argument("--baud", type=int, default=921600, help="baud rate (default 921600)")
+    p.add_argument("--baud", type=validate.baud, default=921600,
+                   help="baud rate (default 921600)")
     p.add_argument("--log-dir", default=None, help="log folder (default: $TETHERLOOP_LOG_DIR "
                    "or the per-user data folder)")
     p.add_argument("--json", action="store_true", help="print one JSON object on stdout")
@@ -379,13 +381,17 @@ def _common(p, port=True):
 
 
 def register(sub) -> None:
+    from agent.plan import AXES, CONTROLLERS, LOOPS
+
+    from . import validate
     p = sub.add_parser("ports", help="list serial ports")
     p.add_argument("--json", action="store_true")
     p.set_defaults(func=cmd_ports)
 
     p = sub.add_parser("settings", help="show the board's settings; --set NAME=VALUE writes")
     p.add_argument("--port", required=True, help="serial device path or pyserial URL")
-    p.add_argument("--baud", type=int, default=921600)
+    p.add_argument("--baud", type=validate.baud, default=921600,
+                   help="baud rate (default 921600)")
     p.add_argument("--set", action="append", metavar="NAME=VALUE",
                    help="write a setting (repeatable; every value is checked before any write)")
     p.add_argument("--persist", action="store_true",
@@ -396,11 +402,14 @@ def register(sub) -> None:
 
     p = sub.add_parser("tune", help="tune one loop (relay experiment, identification, gains)")
     _common(p)
-    p.add_argument("--axis", required=True, choices=("roll", "pitch", "yaw", "heave"))
-    p.add_argument("--loop", required=True, choices=("rate", "angle", "heave"))
-    p.add_argument("--controller", default="pid", choices=("pi", "pid", "pd"))
+    p.add_argument("--axis", required=True, choices=AXES)
+    p.add_argument("--loop", required=True, choices=LOOPS)
+    p.add_argument("--controller", default=validate.plan_default("controller"),
+                   choices=CONTROLLERS)
     p.add_argument("--rule", default="recommended", help="tuning rule (default: recommended)")
-    p.add_argument("--ms", type=float, default=1.4, help="Ms target of the constrained design")
+    p.add_argument("--ms", type=validate.plan_number("ms_target"),
+                   default=validate.plan_default("ms_target"),
+                   help=validate.plan_help("ms_target"))
     p.add_argument("--apply", action="store_true", help="write the chosen gains to the board")
     p.add_argument("--verify", action="store_true",
                    help="step-test the applied gains; roll back if it fails (implies --apply)")
@@ -416,7 +425,8 @@ def register(sub) -> None:
     p.add_argument("--scenario", default=DEFAULT_DEMO_SCENARIO,
                    help=f"invented stand to simulate (default {DEFAULT_DEMO_SCENARIO}; "
                    "`tetherloop mock --list`)")
-    p.add_argument("--speed", default="5", help="simulation clock: multiple of real time, or max")
-    p.add_argument("--seed", type=int, default=1)
+    p.add_argument("--speed", type=validate.speed, default="5",
+                   help="simulation clock: multiple of real time, or max (default 5)")
+    p.add_argument("--seed", type=validate.seed, default=1, help="simulation seed (default 1)")
     p.add_argument("--plan", help="plan TOML (default: every loop the stand offers)")
     p.set_defaults(func=cmd_demo)
