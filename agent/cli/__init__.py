@@ -22,9 +22,20 @@ def _cmd_version(args) -> int:
 
 
 def _cmd_protocol(args) -> int:
+    if args.emit_c:
+        from protocol.emit_c import write
+        try:
+            paths = write(args.emit_c)
+        except OSError as exc:
+            raise UserError(f"cannot write the C files into {args.emit_c}: {exc.strerror}; "
+                            "give a folder you can write to") from None
+        for path in paths:
+            print(f"wrote {path}")
+        return 0
     from protocol.describe import describe_text
     if not args.describe:
-        print("use: tetherloop protocol --describe   (prints the message table)")
+        print("use: tetherloop protocol --describe   (prints the message table)\n"
+              "     tetherloop protocol --emit-c DIR (writes the C99 tables and codec)")
         return 2
     print(describe_text(markdown=args.markdown))
     return 0
@@ -41,6 +52,8 @@ def build_parser() -> argparse.ArgumentParser:
     p = sub.add_parser("protocol", help="describe the wire protocol")
     p.add_argument("--describe", action="store_true", help="print the message table")
     p.add_argument("--markdown", action="store_true", help="as Markdown tables")
+    p.add_argument("--emit-c", metavar="DIR", help="write the C99 message tables and codec into "
+                   "DIR (the checked-in copy is protocol/c/generated)")
     p.set_defaults(func=_cmd_protocol)
     for modname in _GROUPS:
         try:
