@@ -120,3 +120,129 @@ def test_step_verdict_allows_for_the_measurements_own_spread():
     assert "rise time 1 s is outside" in judge_step(slow, pred, plan, 0.02, 0.1)[0][0]
     assert judge_step({"overshoot": None, "rise_s": None}, pred, plan, 0.02, 0.1)[0] == [
         "the step response never reached the new setpoint"]
+
+
+# ---------------------------------------------------------------------------- strict validation
+
+ROLL_RATE = '[[loop]]\naxis = "roll"\nloop = "rate"\n'
+
+
+@pytest.mark.parametrize("stand_line, key, shown", [
+    ('persist = "false"', "persist", "'false'"),  # a quoted false made the board persist
+    ('persist = "no"', "persist", "'no'"),
+    ('verify = "no"', "verify", "'no'"),  # and this still ran the step test
+    ('apply = "yes"', "apply", "'yes'"),
+    ("apply = 0", "apply", "0"),
+])
+def test_a_boolean_must_be_a_toml_boolean(tmp_path, stand_line, key, shown):
+    with pytest.raises(PlanError) as err:
+        load_plan(write(tmp_path, f"[stand]\n{stand_line}\n" + ROLL_RATE))
+    msg = str(err.value)
+    assert f"{key} = {shown} is not a boolean" in msg and "true or false" in msg, msg
+
+
+@pytest.mark.parametrize("text, needle", [
+    ("stand = 3\n" + ROLL_RATE, "stand = 3 is not a table"),
+    ("stand = []\n" + ROLL_RATE, "stand = [] is not a table"),
+    ('limits = "tight"\n' + ROLL_RATE, "limits = 'tight' is not a table"),
+    ("loop = 3\n", "no [[loop]] entries"),
+    ("loop = [1]\n", "1 is not a table"),
+    ('[loop]\naxis = "roll"\nloop = "rate"\n', "array of tables"),
+    ('[[loop]]\naxis = "roll"\n', "loop is missing"),
+])
+def test_every_section_must_be_a_table(tmp_path, text, needle):
+    with pytest.raises(PlanError) as err:
+        load_plan(write(tmp_path, text))
+    assert needle in str(err.value), str(err.value)
+
+
+@pytest.mark.parametrize("text, needle", [
+    ('[stand]\nms_target = "1.4"\n' + ROLL_RATE, "ms_target = '1.4' is not a number"),
+    ("[stand]\nrelay_target = nan\n" + ROLL_RATE, "relay_target = nan is not a number"),
+    ("[limits]\nheave_m = true\n" + ROLL_RATE, "heave_m = True is not a number"),
+    ('[stand]\nrule = 3\n' + ROLL_RATE, "rule = 3 is not known"),
+    ('[[loop]]\naxis = "roll"\nloop = "rate"\nmax_amplitude = -1\n',
+     "max_amplitude = -1 is out of range"),
+    ('[[loop]]\naxis = "roll"\nloop = "rate"\nverify = true\n', "unknown key 'verify'"),
+])
+def test_numbers_and_names_are_checked_with_the_key_value_and_expectation(tmp_path, text,
+                                                                          needle):
+    with pytest.raises(PlanError) as err:
+        load_plan(write(tmp_path, text))
+    assert needle in str(err.value) and "expected" in str(err.value), str(err.value)
+
+
+def test_a_loop_inherits_the_stand_defaults_and_may_override_them():
+    plan = plan_from_dict({"stand": {"controller": "pi", "ms_target": 1.6},
+                           "loop": [{"axis": "roll", "loop": "rate"},
+                                    {"axis": "roll", "loop": "angle", "controller": "pd"}]})
+    rate, angle = plan.loops
+    assert (rate.controller, rate.ms_target) == ("pi", 1.6)
+    assert (angle.controller, angle.ms_target) == ("pd", 1.6)
+
+
+# ---------------------------------------------------------------------------- board checks
+
+
+class Desc:
+    """A setting descriptor as the session holds it (minimum, maximum, unit)."""
+
+    def __init__(self, minimum, maximum, unit=""):
+        self.minimum, self.maximum, self.unit = minimum, maximum, unit
+
+
+AXES = {"roll": ("rate", "angle")}
+
+
+def test_relay_ceiling_above_the_loops_output_limit_is_refused():
+    # the board's output limit is 1: a ceiling of 1e6 saturates the output and the board kills
+    from agent.plan import check_against_board
+    plan = plan_from_dict({"loop": [{"axis": "roll", "loop": "rate", "max_amplitude": 1e6}]})
+    with pytest.raises(PlanError) as err:
+        check_against_board(plan, AXES, {}, {"roll.rate.out_limit": 1.0})
+    msg = str(err.value)
+    assert "max_amplitude = 1e+06" in msg and "roll.rate.out_limit = 1" in msg
+    assert "at most 1" in msg
+    ok = plan_from_dict({"loop": [{"axis": "roll", "loop": "rate", "max_amplitude": 0.8}]})
+    check_against_board(ok, AXES, {}, {"roll.rate.out_limit": 1.0})
+    check_against_board(plan_from_dict({"loop": [{"axis": "roll", "loop": "rate"}]}), AXES, {},
+                        {"roll.rate.out_limit": 1.0})  # default ceiling: half the limit
+
+
+def test_limits_outside_the_boards_kill_bounds_are_refused():
+    from agent.plan import check_against_board
+    plan = plan_from_dict({"limits": {"angle_deg": 30}, "loop": [{"axis": "roll",
+                                                                   "loop": "rate"}]})
+    settings = {"kill.angle_rad": Desc(0.01, 0.3, "rad"), "kill.rate_rad_s": Desc(0.1, 60.0)}
+    with pytest.raises(PlanError) as err:
+        check_against_board(plan, AXES, settings, {})
+    msg = str(err.value)
+    assert "angle_deg = 30 deg" in msg and "kill.angle_rad" in msg and "0.01 to 0.3 rad" in msg
+    settings["kill.angle_rad"] = Desc(0.01, 3.2, "rad")
+    check_against_board(plan, AXES, settings, {})
+
+
+def test_board_checks_on_the_simulated_board():
+    # the simulated gimbal board declares roll.rate.out_limit and its kill.* bounds
+    from agent.plan import check_against_board
+    from agent.stand import Stand
+    from mock_device.runner import start_mock
+    h = start_mock("gimbal-quad", transport="inproc", speed=1.0, seed=3)
+    h.port.timeout = 0.01
+    st = Stand.connect(h.port)
+    try:
+        args = (st.info.axes, st.session.settings, st.session.values)
+        out_limit = st.session.values["roll.rate.out_limit"]
+        too_big = plan_from_dict({"loop": [{"axis": "roll", "loop": "rate",
+                                            "max_amplitude": 1e6}]})
+        with pytest.raises(PlanError, match="roll.rate.out_limit"):
+            check_against_board(too_big, *args)
+        fits = plan_from_dict({"loop": [{"axis": "roll", "loop": "rate",
+                                         "max_amplitude": out_limit}]})
+        check_against_board(fits, *args)
+        with pytest.raises(PlanError, match="no 'heave' axis"):
+            check_against_board(plan_from_dict({"loop": [{"axis": "heave", "loop": "rate"}]}),
+                                *args)
+    finally:
+        st.close()
+        h.stop()
