@@ -272,6 +272,112 @@ def close(stand: Stand, outcome: str = "closed") -> None:
     stand.close(outcome)
 
 
+# ---------------------------------------------------------------------------- board commands
+
+
+@dataclass(frozen=True)
+class BoardStatus:
+    """What the board says of itself now: identity, state (from its own Ack), axes and the
+    gains it holds (read back)."""
+
+    device_id: str
+    firmware_version: str
+    protocol: str
+    loop_rate_hz: int
+    state: str
+    axes: dict
+    gains: dict  # {"roll.rate": {"kp": ..., ...}}
+    link: dict
+
+
+def board_status(stand: Stand) -> BoardStatus:
+    """Ask the board for its state (a telemetry configuration's Ack carries it) and read the
+    gains of every loop back."""
+    from protocol.messages import Axis, Loop
+    axes = [int(Axis[a.upper()]) for a in stand.info.axes]
+    stand.session.telemetry(10, axes, int(Loop.RATE))  # a harmless request: its Ack says state
+    gains = {}
+    for axis, levels in stand.info.axes.items():
+        for level in levels:
+            gains[f"{axis}.{level}"] = {k.split(".")[-1]: v for k, v in
+                                        workflows.current_gains(stand, LoopPlan(axis, level)).items()}
+    info = stand.info
+    return BoardStatus(info.device_id, info.firmware_version, info.protocol, info.loop_rate_hz,
+                       stand.state.name.lower(), {a: list(l) for a, l in info.axes.items()},
+                       gains, stand.link.stats.as_dict())
+
+
+def disarm(stand: Stand) -> None:
+    """Stop any experiment and disarm (legal in every state; a latched kill stays latched)."""
+    stand.disarm()
+
+
+def gain_settings(stand: Stand) -> dict[str, float]:
+    """Every loop's gains as read back from the board (``{axis}.{loop}.{gain}`` names)."""
+    out: dict[str, float] = {}
+    for axis, levels in stand.info.axes.items():
+        for level in levels:
+            out.update(workflows.current_gains(stand, LoopPlan(axis, level)))
+    return out
+
+
+def export_gains(stand: Stand) -> str:
+    """The board's gains (read back now) as a settings file's text."""
+    from .settingsfile import format_settings
+    return format_settings(stand.info.device_id, gain_settings(stand), "the board's gains")
+
+
+def apply_settings(stand: Stand, values: dict[str, float], source: str,
+                   device_id: str = "", force: bool = False,
+                   progress: ProgressFn = quiet) -> dict[str, float]:
+    """Write a set of settings (from a file or a session's start) all-or-nothing: every name,
+    bound and read-only flag is checked against the board's table before the first write; the
+    values are then read back. A file from another board is refused unless ``force``.
+
+    Raises
+    ------
+    UserError
+        A name, bound or board mismatch (nothing written).
+    DeviceError, LinkError
+        A write failed on the link or the board.
+    """
+    from .settingsfile import check_against_table
+    if device_id and device_id != stand.info.device_id and not force:
+        raise UserError(f"{source} was read from board {device_id!r}, this is "
+                        f"{stand.info.device_id!r}: nothing was written (--force to apply it "
+                        "anyway)")
+    check_against_table(values, stand.session.settings, source)
+    written = workflows.write_gains(stand, values, key=None, event="settings_applied",
+                                    progress=progress, source=source)
+    return {name: stand.session.read(name) for name in written}
+
+
+def restore_session(stand: Stand, session_path, force: bool = False,
+                    progress: ProgressFn = quiet) -> dict[str, float]:
+    """Write back the gains a logged session started from (its manifest's settings_before),
+    read back. Only writable gain settings that differ from the board's are written.
+
+    Raises
+    ------
+    LogbookError
+        The session cannot be read.
+    UserError
+        It was recorded on another board (unless ``force``), or holds no gains.
+    """
+    from .logbook import read_session
+    sess = read_session(session_path)
+    before = sess.manifest.get("settings_before") or {}
+    device = (sess.manifest.get("device") or {}).get("device_id", "")
+    gains = {k: float(v) for k, v in before.items()
+             if k.rsplit(".", 1)[-1] in workflows.GAIN_KEYS and k in stand.session.settings}
+    if not gains:
+        raise UserError(f"session {sess.name} holds no gains of this board to restore")
+    changed = {k: v for k, v in gains.items() if stand.session.values.get(k) != v}
+    if not changed:
+        return {}
+    return apply_settings(stand, changed, f"session {sess.name}", device, force, progress)
+
+
 # ---------------------------------------------------------------------------- background work
 
 
@@ -312,7 +418,8 @@ class Job:
         return self._done.is_set()
 
 
-__all__ = ["ConfirmedBy", "Confirmation", "start_builtin_board", "connect", "check_plan",
+__all__ = ["BoardStatus", "board_status", "disarm", "gain_settings", "export_gains",
+           "apply_settings", "restore_session", "ConfirmedBy", "Confirmation", "start_builtin_board", "connect", "check_plan",
            "open_session", "armed", "tune_one", "autotune", "loop_plan_of", "apply_candidate",
            "roll_back", "reverify", "kill", "clear_kill", "describe_kill", "close", "Job",
            "PlanError", "DeviceError", "LinkError"]

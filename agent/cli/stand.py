@@ -325,12 +325,25 @@ def cmd_settings(args) -> int:
     from agent import operations
     con = _console(args)
     values = _parse_assignments(args.set)  # bad syntax: error before connecting
+    from_file = None
+    if getattr(args, "apply", None):
+        from agent.settingsfile import parse_settings
+        try:
+            text = Path(args.apply).expanduser().read_text(encoding="utf-8")
+        except OSError as exc:
+            raise UserError(f"--apply {args.apply}: {exc.strerror or exc}") from None
+        from_file = parse_settings(text, f"settings file {args.apply}")
+        values = {**from_file.values, **values}
     stand = _connect(args.port, args)
     try:
         try:
-            for name, value in values.items():
-                stand.session.setting(name).check(value)
-            written = stand.session.write_many(values) if values else {}
+            if from_file is not None:
+                written = operations.apply_settings(stand, values, f"settings file {args.apply}",
+                                                    from_file.device_id, args.force)
+            else:
+                for name, value in values.items():
+                    stand.session.setting(name).check(value)
+                written = stand.session.write_many(values) if values else {}
             if args.persist:
                 if not stand.info.capabilities & Capability.PERSIST:
                     raise UserError(f"{stand.info.device_id} has no non-volatile settings store "
@@ -394,6 +407,11 @@ def register(sub) -> None:
                    help="baud rate (default 921600)")
     p.add_argument("--set", action="append", metavar="NAME=VALUE",
                    help="write a setting (repeatable; every value is checked before any write)")
+    p.add_argument("--apply", metavar="FILE",
+                   help="write every value of a settings file (`tetherloop gains --export`); "
+                   "all checked against the board's table first, then read back")
+    p.add_argument("--force", action="store_true",
+                   help="with --apply: also a file read from another board")
     p.add_argument("--persist", action="store_true",
                    help="then store the board's settings in its non-volatile memory")
     p.add_argument("--filter", default="", help="show only settings whose name contains this")
