@@ -74,17 +74,30 @@ _ENUMS = (Axis, Loop, DeviceState, ExperimentKind, RefuseCode, KillReason, Event
 BUSY_WHILE_RUNNING = ("setting_write", "experiment_start")
 
 
-def refusal_in(spec, state: DeviceState) -> str | None:
-    """Refuse code the device sends for host message ``spec`` in ``state`` by the state rules, or
-    None when the message is legal there. Restates the rule of messages.py's docstring: KILLED ->
-    KILL_LATCHED; RUNNING and SettingWrite/ExperimentStart -> BUSY; otherwise WRONG_STATE."""
+def refusal_in(spec, state: DeviceState) -> RefuseCode | None:
+    """The refusal a device sends for host message ``spec`` in ``state`` by the state rule of
+    SPEC.md 11.1 step 10, or None when the message is legal there.
+
+    Parameters
+    ----------
+    spec : MessageSpec
+        A host message of the table.
+    state : DeviceState
+        The device's state when the message arrives.
+
+    Returns
+    -------
+    RefuseCode or None
+        KILL_LATCHED in KILLED; BUSY for SettingWrite and ExperimentStart in RUNNING;
+        WRONG_STATE otherwise; None when ``state`` is in the message's ``legal_in``.
+    """
     if state in spec.legal_in:
         return None
     if state == DeviceState.KILLED:
-        return RefuseCode.KILL_LATCHED.name
+        return RefuseCode.KILL_LATCHED
     if state == DeviceState.RUNNING and spec.name in BUSY_WHILE_RUNNING:
-        return RefuseCode.BUSY.name
-    return RefuseCode.WRONG_STATE.name
+        return RefuseCode.BUSY
+    return RefuseCode.WRONG_STATE
 
 
 def _md(text: str) -> str:
@@ -149,8 +162,11 @@ def spec_markdown() -> str:
         L.append("")
 
     L += ["### 17.2 Message summary", "",
-          "| type id | message | sender | payload bytes | legal in (host messages) | "
-          "device answers |", "|---|---|---|---|---|---|"]
+          "`vector name` is the message's name in the test vectors (section 14): the message "
+          "name with an underscore before each capital letter but the first, all in lower "
+          "case.", "",
+          "| type id | message | vector name | sender | payload bytes | legal in (host "
+          "messages) | device answers |", "|---|---|---|---|---|---|---|"]
     for tid in sorted(MESSAGES):
         spec = MESSAGES[tid]
         _, size = _layout_rows(spec.cls)
@@ -160,8 +176,8 @@ def spec_markdown() -> str:
             rep = " or ".join(_class_name(r) for r in spec.replies) or "nothing"
         else:
             legal, rep = "—", "—"
-        L.append(f"| 0x{tid:02X} | {_class_name(spec.name)} | {spec.sender} | {size} | {legal} "
-                 f"| {rep} |")
+        L.append(f"| 0x{tid:02X} | {_class_name(spec.name)} | `{spec.name}` | {spec.sender} | "
+                 f"{size} | {legal} | {rep} |")
     L.append("")
 
     states = list(DeviceState)
@@ -183,7 +199,7 @@ def spec_markdown() -> str:
                 ok = [r for r in spec.replies if r != "refuse"]
                 cells.append("→ " + (_class_name(ok[0]) if ok else "(no reply)"))
             else:
-                cells.append(f"Refuse {code}")
+                cells.append(f"Refuse {code.name}")
         L.append(f"| {_class_name(spec.name)} (0x{tid:02X}) | " + " | ".join(cells) + " |")
     L += ["", "A device-to-host message received by a device is answered with Refuse "
           "NOT_A_REQUEST in every state.", ""]
@@ -272,30 +288,33 @@ def _class_name(snake: str) -> str:
 _NOTES = {
     ("RefuseCode", "UNKNOWN_TYPE"): "type id not in this device's table; detail = the type id",
     ("RefuseCode", "MALFORMED"): "payload shorter than the message's fields, a text that is not "
-                                 "UTF-8, or a count above its maximum",
+                                 "well-formed UTF-8 or longer than 64 bytes, or a count above "
+                                 "its maximum; detail = 0",
     ("RefuseCode", "WRONG_STATE"): "message not legal in the current state, or a DISARMED_ONLY "
-                                   "setting written while armed; detail = state",
+                                   "setting written outside DISARMED; detail = state",
     ("RefuseCode", "UNKNOWN_SETTING"): "no setting with that id (SettingRead/Write) or index "
                                        "(SettingDescribe); detail = the id or index",
-    ("RefuseCode", "OUT_OF_BOUNDS"): "SettingWrite value outside [minimum, maximum] or NaN; "
-                                     "detail = setting id",
-    ("RefuseCode", "INTERLOCK"): "ArmConfirm without a valid challenge, wrong response, expired "
-                                 "token, or operator_confirmed ≠ 1",
+    ("RefuseCode", "OUT_OF_BOUNDS"): "SettingWrite value outside [minimum, maximum], not finite, "
+                                     "or not whole for INT/BOOL/CHOICE; detail = setting id",
+    ("RefuseCode", "INTERLOCK"): "ArmConfirm refused by the interlock; detail = 1 no token, "
+                                 "2 token expired, 3 wrong response, 4 operator_confirmed ≠ 1",
     ("RefuseCode", "KILL_LATCHED"): "state is KILLED and the message is not legal there; "
                                     "detail = state (3)",
     ("RefuseCode", "BUSY"): "SettingWrite or ExperimentStart while RUNNING; detail = state (2)",
-    ("RefuseCode", "BAD_PARAMETER"): "ExperimentStart/Adjust or TelemetryConfig parameter invalid "
-                                     "(not finite, relay amplitude ≤ 0, duration ≤ 0, negative "
-                                     "threshold or step time, no relay running or not its tag, "
-                                     "telemetry rate above the loop rate)",
-    ("RefuseCode", "UNSUPPORTED"): "axis, loop level or experiment kind not present on this "
-                                   "device, or a capability it lacks",
+    ("RefuseCode", "BAD_PARAMETER"): "ExperimentStart, ExperimentAdjust or TelemetryConfig "
+                                     "field invalid (section 11.3); detail = the position "
+                                     "(0-based) of the offending field in the byte table",
+    ("RefuseCode", "UNSUPPORTED"): "kind, axis or loop level not on this device (detail = the "
+                                   "field's position), or a capability it lacks (detail = the "
+                                   "Capability bit)",
     ("RefuseCode", "VERSION"): "frame's major version differs; detail = the received major",
-    ("RefuseCode", "NO_KEEPALIVE"): "ArmConfirm while the watchdog is not fresh",
+    ("RefuseCode", "NO_KEEPALIVE"): "ArmConfirm with no host frame within watchdog_s before it; "
+                                    "detail = milliseconds since that frame",
     ("RefuseCode", "READ_ONLY"): "SettingWrite to a READ_ONLY setting; detail = setting id",
-    ("RefuseCode", "NOT_A_REQUEST"): "a device-to-host type arrived at the device",
+    ("RefuseCode", "NOT_A_REQUEST"): "a device-to-host type arrived at the device; detail = the "
+                                     "type id",
     ("RefuseCode", "STORAGE"): "SettingsPersist could not write the non-volatile store; "
-                               "the settings in use are unchanged",
+                               "the settings in use are unchanged; detail = 0",
 }
 
 
@@ -322,6 +341,7 @@ _NOTES.update({
     ("KillReason", "WATCHDOG"): "device: no host frame within watchdog_s",
     ("KillReason", "KILL_BUTTON"): "device: the board's own kill input",
     ("KillReason", "SENSOR_FAULT"): "device: a sensor stuck or out of range",
+    ("EventKind", "EXPERIMENT_STARTED"): "reason: ExperimentKind",
     ("EventKind", "EXPERIMENT_FINISHED"): "reason: FinishReason",
     ("EventKind", "KILL_TRIPPED"): "reason: KillReason; value, threshold: offending value, limit",
     ("EventKind", "FAULT"): "text says what",

@@ -147,7 +147,8 @@ def test_out_of_bounds_settings_are_refused_and_change_nothing():
 def test_disarmed_only_setting_is_refused_while_armed():
     w = in_state(S.ARMED)
     r = w.request(M.SettingWrite(setting_id=setting_id(w.fw, "watchdog_s"), value=1.0))
-    assert isinstance(r, M.Refuse) and r.code == RC.WRONG_STATE
+    # protocol/SPEC.md 11.3: WRONG_STATE's detail is the state (it was the setting id)
+    assert isinstance(r, M.Refuse) and r.code == RC.WRONG_STATE and r.detail == S.ARMED
 
 
 # ------------------------------------------------------------------ refusals per state
@@ -217,11 +218,49 @@ def test_unknown_device_malformed_and_foreign_major_frames_are_refused():
     seq = w.send(M.Hello(host_name="x"), version=0x20)
     w.tick()
     f = [f for f in w.frames if f.seq == seq and f.flags & M.FLAG_REPLY][-1]
-    assert f.msg.code == RC.VERSION and f.msg.detail == 0x20 and f.version == codec.VERSION_BYTE
+    # protocol/SPEC.md 10: detail = the frame's major (it was the whole version byte, 0x20)
+    assert f.msg.code == RC.VERSION and f.msg.detail == 2 and f.version == codec.VERSION_BYTE
     assert w.fw.state == S.ARMED
-    # a Kill with a short payload is still a kill (never refused)
+    # a Kill with a short payload is still a kill (never refused), by the operator
     r = w.request(M.UnknownMessage(0x40, b""))
     assert isinstance(r, M.Ack) and w.fw.state == S.KILLED
+    trip = [e for e in w.events if e.kind == EK.KILL_TRIPPED][-1]
+    assert trip.reason == M.KillReason.HOST_OPERATOR and trip.value == 0.0  # was reason 0
+
+
+def test_a_kill_of_another_major_is_executed_and_other_frames_of_it_refused():
+    # protocol/SPEC.md 11.1 step 2: type 0x40 is Kill in every major; it was refused VERSION
+    w = in_state(S.RUNNING)
+    seq = w.send(M.Kill(reason=M.KillReason.HOST_LINK, value=0.0), version=0x21)
+    w.tick()
+    f = [f for f in w.frames if f.seq == seq and f.flags & M.FLAG_REPLY][-1]
+    assert isinstance(f.msg, M.Ack) and f.msg.state == S.KILLED
+    assert f.version == codec.VERSION_BYTE and w.fw.state == S.KILLED
+    trip = [e for e in w.events if e.kind == EK.KILL_TRIPPED][-1]
+    assert trip.reason == M.KillReason.HOST_OPERATOR
+    seq = w.send(M.KillClear(), version=0x00)
+    w.tick()
+    f = [f for f in w.frames if f.seq == seq and f.flags & M.FLAG_REPLY][-1]
+    assert f.msg.code == RC.VERSION and f.msg.detail == 0 and w.fw.state == S.KILLED
+
+
+def test_checks_run_in_the_order_of_the_spec():
+    # protocol/SPEC.md 11.1: the type is checked before the payload (a device type with an
+    # empty payload is NOT_A_REQUEST), and the payload before the reply cache (a malformed retry
+    # whose seq and type are cached was answered from the cache)
+    w = in_state(S.DISARMED)
+    r = w.request(M.UnknownMessage(M.BY_CLASS[M.Telemetry].type_id, b""))
+    assert r.code == RC.NOT_A_REQUEST and r.detail == M.BY_CLASS[M.Telemetry].type_id
+    kp = setting_id(w.fw, "roll.rate.kp")
+    seq = w.seq
+    assert isinstance(w.request(M.SettingRead(setting_id=kp)), M.SettingValue)
+    r = w.request(M.UnknownMessage(M.BY_CLASS[M.SettingRead].type_id, b"\x01"),
+                  flags=M.FLAG_RETRY, seq=seq)
+    assert isinstance(r, M.Refuse) and r.code == RC.MALFORMED and r.detail == 0
+    assert w.fw.stats["replies_from_cache"] == 0
+    # a request carrying FLAG_REPLY and reserved flag bits is served as any request
+    r = w.request(M.SettingRead(setting_id=kp), flags=0xFD)
+    assert isinstance(r, M.SettingValue)
 
 
 def test_garbage_bytes_do_not_disturb_the_board():
@@ -253,6 +292,27 @@ def test_retry_is_answered_from_the_cache_and_never_executed_twice():
     # a retry whose original never arrived is executed
     r = w.request(M.ExperimentStop(tag=7), flags=M.FLAG_RETRY, seq=5000)
     assert isinstance(r, M.Ack) and w.fw.state == S.ARMED
+
+
+def test_refusals_are_never_cached():
+    # protocol/SPEC.md 9: a refused request executed nothing, so its retry is executed again;
+    # the cached refusal was sent back, and the board stayed unarmable for that seq
+    w = in_state(S.KILLED)
+    seq = w.seq
+    assert w.request(M.ArmRequest()).code == RC.KILL_LATCHED
+    w.request(M.KillClear())
+    r = w.request(M.ArmRequest(), flags=M.FLAG_RETRY, seq=seq)
+    assert isinstance(r, M.ArmChallenge)
+    # a refused new request of a cached seq also drops the older reply of that seq
+    w = in_state(S.DISARMED)
+    seq = w.seq
+    first = w.request(M.ArmRequest())
+    w.request(M.KillClear())
+    w.request(M.Kill(reason=1, value=0.0))
+    assert w.request(M.ArmRequest(), seq=seq).code == RC.KILL_LATCHED
+    w.request(M.KillClear())
+    again = w.request(M.ArmRequest(), flags=M.FLAG_RETRY, seq=seq)
+    assert isinstance(again, M.ArmChallenge) and again.token != first.token
 
 
 def test_retried_setting_write_is_not_applied_twice_and_hello_clears_the_cache():
@@ -314,31 +374,44 @@ def test_a_kill_is_never_answered_from_the_cache():
 
 
 def test_arming_interlock():
+    # protocol/SPEC.md 12.3: INTERLOCK's detail says which condition failed (it was 0)
     w = in_state(S.DISARMED)
     w.keepalive()
     r = w.request(M.ArmConfirm(response=0, operator_confirmed=1))
-    assert r.code == RC.INTERLOCK  # no challenge
+    assert (r.code, r.detail) == (RC.INTERLOCK, 1)  # no challenge
     ch = w.request(M.ArmRequest())
     r = w.request(M.ArmConfirm(response=ch.token, operator_confirmed=1))
-    assert r.code == RC.INTERLOCK  # wrong response
+    assert (r.code, r.detail) == (RC.INTERLOCK, 3)  # wrong response
     r = w.request(M.ArmConfirm(response=ch.token ^ 0xFFFFFFFF, operator_confirmed=1))
-    assert r.code == RC.INTERLOCK  # token used up by the refused confirm
+    assert (r.code, r.detail) == (RC.INTERLOCK, 1)  # token used up by the refused confirm
     ch = w.request(M.ArmRequest())
     r = w.request(M.ArmConfirm(response=ch.token ^ 0xFFFFFFFF, operator_confirmed=0))
-    assert r.code == RC.INTERLOCK  # operator did not confirm
+    assert (r.code, r.detail) == (RC.INTERLOCK, 4)  # operator did not confirm
     ch = w.request(M.ArmRequest())
-    w.tick(int(ch.valid_ms) + 5)  # expired (link time advances with the ticks)
+    for _ in range(int(ch.valid_ms) + 5):  # expired (link time advances with the ticks)
+        w.keepalive()
+        w.tick()
     r = w.request(M.ArmConfirm(response=ch.token ^ 0xFFFFFFFF, operator_confirmed=1))
-    assert r.code in (RC.INTERLOCK, RC.NO_KEEPALIVE)
+    assert (r.code, r.detail) == (RC.INTERLOCK, 2)
     ch = w.request(M.ArmRequest())
-    w.tick(int(w.fw.settings.get("watchdog_s") * 1000) + 5)  # host silent too long
+    silent = int(w.fw.settings.get("watchdog_s") * 1000) + 5
+    w.tick(silent)  # host silent too long
     r = w.request(M.ArmConfirm(response=ch.token ^ 0xFFFFFFFF, operator_confirmed=1))
-    assert r.code == RC.NO_KEEPALIVE
+    assert r.code == RC.NO_KEEPALIVE and r.detail == pytest.approx(silent + 1, abs=2)  # ms
     assert w.fw.state == S.DISARMED
     assert isinstance(w.arm(), M.Ack) and w.fw.state == S.ARMED
     assert w.kinds()[-1] == EK.STATE_CHANGED
 
 
+def test_any_host_frame_satisfies_the_arming_keepalive_condition():
+    # protocol/SPEC.md 12.3: a busy host that sends requests and no Keepalive (SPEC 12.1) arms
+    w = in_state(S.DISARMED)
+    ch = w.request(M.ArmRequest())
+    for _ in range(15):
+        w.tick(99)
+        w.request(M.SettingRead(setting_id=1))  # 1.5 s of requests, watchdog_s is 1 s
+    r = w.request(M.ArmConfirm(response=ch.token ^ 0xFFFFFFFF, operator_confirmed=1))
+    assert isinstance(r, M.Ack) and r.state == S.ARMED
 # ------------------------------------------------------------------ kill
 
 
@@ -411,6 +484,7 @@ def test_threshold_crossing_zeroes_outputs_in_the_same_tick():
 def test_saturation_time_kill():
     w = in_state(S.ARMED)
     fw = w.fw
+    _raise_kill_settings(fw)
     w.request(relay(amplitude=1.5, duration_s=10, kill_saturation_s=0.25, kill_rate_rad_s=50,
                     kill_angle_rad=3))
     start = w.t
@@ -452,6 +526,12 @@ LOOSE = {"kill_angle_rad": 3.0, "kill_rate_rad_s": 50.0, "kill_heave_m": 2.5,
          "kill_saturation_s": 20.0}
 
 
+def _raise_kill_settings(fw: Firmware) -> None:
+    """The owner's ceilings up to LOOSE: an experiment can only tighten a kill.* setting."""
+    for field, value in LOOSE.items():
+        fw.set_setting("kill." + field[len("kill_"):], value)
+
+
 def _run_until_killed(fw: Firmware, ticks: int = 5000):
     for _ in range(ticks):
         fw.tick(0.0)
@@ -473,6 +553,7 @@ def test_each_measured_kill_threshold_trips_on_its_own_axis(scenario, axis, loop
     # that one, on that axis, at the first sample beyond it (the relay's setpoint of 0.1 takes
     # the measurement past 0.02 on every level)
     fw = Firmware(scenario, seed=3)
+    _raise_kill_settings(fw)
     fw.arm_now()
     limits = dict(LOOSE, **{field: 0.02})
     fw.start_experiment(relay(axis=axis, loop=loop, amplitude=0.3, setpoint=0.1, duration_s=5,
@@ -488,6 +569,7 @@ def test_the_height_threshold_counts_from_the_height_at_the_experiment_start():
     # 0.5 m, hold it, then start a relay with a 5 cm threshold: an absolute check would trip at
     # once with 0.5 m
     fw = Firmware("heave-rail", seed=2)
+    _raise_kill_settings(fw)
     fw.arm_now()
     fw.start_experiment(M.ExperimentStart(
         tag=3, kind=M.ExperimentKind.STEP, axis=M.Axis.HEAVE, loop=M.Loop.HEAVE,
@@ -511,6 +593,18 @@ def test_the_kill_settings_apply_where_the_experiment_gives_zero():
     fw.start_experiment(relay(amplitude=0.3, duration_s=5))  # every threshold 0
     ev = _run_until_killed(fw)
     assert ev.reason == M.KillReason.RATE_LIMIT and ev.threshold == pytest.approx(0.1)
+
+
+def test_an_experiment_cannot_loosen_the_kill_settings():
+    # protocol/SPEC.md 12.2: a threshold above the kill.* setting is capped at it; 1e30 was
+    # taken as asked and the body could leave the stand's range without a trip
+    fw = Firmware("single-axis", seed=3)
+    fw.set_setting("kill.rate_rad_s", 0.1)
+    fw.arm_now()
+    fw.start_experiment(relay(amplitude=0.3, duration_s=5, kill_rate_rad_s=1e30))
+    ev = _run_until_killed(fw)
+    assert ev.reason == M.KillReason.RATE_LIMIT and ev.threshold == pytest.approx(0.1)
+    assert abs(ev.value) < 0.2  # at the first crossing of the setting
 
 
 def test_a_host_message_without_a_handler_stops_the_import(monkeypatch):
@@ -567,6 +661,60 @@ def test_experiment_parameters_are_checked():
         r = w.request(bad)
         assert isinstance(r, M.Refuse) and r.code == code, (bad, r)
     assert w.fw.state == S.ARMED
+
+
+def test_experiment_refusals_name_the_offending_field():
+    # protocol/SPEC.md 11.3: Refuse.detail = the field's position in the byte table (it was 0)
+    w = in_state(S.ARMED)
+    for bad, code, detail in [
+            (relay(tag=0), RC.BAD_PARAMETER, 0),
+            (dataclasses.replace(relay(), kind=9), RC.UNSUPPORTED, 1),
+            (relay(axis=M.Axis.HEAVE, tag=0), RC.UNSUPPORTED, 2),  # UNSUPPORTED comes first
+            (relay(loop=M.Loop.HEAVE), RC.UNSUPPORTED, 3),
+            (relay(amplitude=-1.0), RC.BAD_PARAMETER, 4),
+            (relay(bias=float("inf"), duration_s=-1.0), RC.BAD_PARAMETER, 6),
+            (relay(duration_s=0.0), RC.BAD_PARAMETER, 9),
+            (dataclasses.replace(relay(), kind=M.ExperimentKind.STEP, step_at_s=-0.1),
+             RC.BAD_PARAMETER, 8),
+            (relay(kill_heave_m=-0.1), RC.BAD_PARAMETER, 12),
+            (relay(kill_saturation_s=float("nan")), RC.BAD_PARAMETER, 13)]:
+        r = w.request(bad)
+        assert isinstance(r, M.Refuse) and (r.code, r.detail) == (code, detail), (bad, r)
+    assert w.fw.state == S.ARMED
+    # ExperimentAdjust of an experiment that is not a relay: BAD_PARAMETER on the tag (it was
+    # UNSUPPORTED); the spec names no relay running as a bad tag
+    w.request(M.ExperimentStart(tag=5, kind=M.ExperimentKind.HOLD, axis=M.Axis.ROLL,
+                                loop=M.Loop.RATE, duration_s=10))
+    r = w.request(M.ExperimentAdjust(tag=5, amplitude=0.1, hysteresis=0.0, bias=0.0))
+    assert (r.code, r.detail) == (RC.BAD_PARAMETER, 0)
+
+
+def test_experiment_stop_with_another_tag_changes_nothing():
+    # protocol/SPEC.md 11.2: acknowledged with the state unchanged (the board stopped it)
+    w = in_state(S.RUNNING)
+    n = len(w.events)
+    r = w.request(M.ExperimentStop(tag=8))
+    assert isinstance(r, M.Ack) and r.state == S.RUNNING and w.fw.state == S.RUNNING
+    w.keepalive()
+    w.tick(5)
+    assert len(w.events) == n
+    r = w.request(M.ExperimentStop(tag=0))  # 0 means "whatever runs"
+    assert r.state == S.ARMED and w.fw.state == S.ARMED
+    assert w.events[-2].kind == EK.EXPERIMENT_FINISHED
+
+
+def test_state_changed_and_watchdog_events_carry_the_running_tag():
+    # protocol/SPEC.md 13.5: STATE_CHANGED names the tag running after the change (it sent 0 on
+    # entering RUNNING); WATCHDOG_EXPIRED names the tag running when it expired (it sent 0)
+    w = in_state(S.RUNNING)
+    started = [e for e in w.events if e.kind == EK.STATE_CHANGED][-1]
+    assert started.state == S.RUNNING and started.tag == 7
+    while w.fw.state == S.RUNNING:
+        w.tick()
+    expired = [e for e in w.events if e.kind == EK.WATCHDOG_EXPIRED][-1]
+    assert expired.tag == 7
+    killed = [e for e in w.events if e.kind == EK.STATE_CHANGED][-1]
+    assert killed.state == S.KILLED and killed.tag == 0
 
 
 def test_relay_adjust_changes_the_amplitude():
@@ -628,6 +776,7 @@ def test_blocked_axis_winds_up_without_anti_windup_and_the_board_kills():
     def run(aw_mode, aw_tt, i_limit):
         w = in_state(S.DISARMED, "single-axis-locked")
         fw = w.fw
+        fw.set_setting("kill.saturation_s", 3.0)  # the experiment's 3 s is not capped
         fw.set_setting("roll.rate.aw_mode", aw_mode)
         fw.set_setting("roll.rate.aw_tt", aw_tt)
         fw.set_setting("roll.rate.i_limit", i_limit)
@@ -682,9 +831,21 @@ def test_telemetry_at_the_requested_rate():
     assert set(dt) == {4000}
     assert np.all(np.diff([t.counter for t in got]) == 1)
     r = w.request(M.TelemetryConfig(rate_hz=2000, axis_mask=1, loop=0))
-    assert r.code == RC.BAD_PARAMETER
-    r = w.request(M.TelemetryConfig(rate_hz=10, axis_mask=0b1000, loop=0))
-    assert r.code == RC.UNSUPPORTED
+    assert (r.code, r.detail) == (RC.BAD_PARAMETER, 0)
+
+
+def test_telemetry_config_refuses_an_unknown_level_and_ignores_absent_axes():
+    # protocol/SPEC.md 13.2: an unknown loop level is BAD_PARAMETER (it was acknowledged and
+    # the outer loop reported); mask bits of absent axes are ignored (they were UNSUPPORTED)
+    w = in_state(S.ARMED, "gimbal-quad")
+    r = w.request(M.TelemetryConfig(rate_hz=100, axis_mask=1, loop=7))
+    assert isinstance(r, M.Refuse) and (r.code, r.detail) == (RC.BAD_PARAMETER, 3)
+    r = w.request(M.TelemetryConfig(rate_hz=100, axis_mask=0xFF, loop=0))
+    assert isinstance(r, M.Ack)
+    n0 = len(w.telemetry)
+    w.tick(30)
+    assert len(w.telemetry) > n0
+    assert [s.axis for s in w.telemetry[-1].axes] == [0, 1, 2]
 
 
 def test_telemetry_reports_the_experiment_level_and_relay_state():
@@ -805,3 +966,8 @@ def test_writing_gains_to_a_running_loop_is_bumpless(name, value):
     fw.tick(0.0)
     _, _, u_after = fw.level_signals("heave", level)
     assert abs(u_after - u_before) < 0.02, (u_before, u_after)
+
+
+def test_an_unknown_quirk_is_refused_by_name():
+    with pytest.raises(ValueError, match="unknown board quirk.*no-such-thing.*known: "):
+        Firmware("single-axis", quirks={"no-such-thing"})

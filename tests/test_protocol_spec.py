@@ -43,10 +43,10 @@ def test_legality_rule_matches_the_state_machine_text():
     S = messages.DeviceState
     sw, es, arm = (messages.by_name(n) for n in ("setting_write", "experiment_start",
                                                  "arm_request"))
-    assert describe.refusal_in(sw, S.RUNNING) == "BUSY"
-    assert describe.refusal_in(es, S.RUNNING) == "BUSY"
-    assert describe.refusal_in(es, S.KILLED) == "KILL_LATCHED"
-    assert describe.refusal_in(arm, S.ARMED) == "WRONG_STATE"
+    assert describe.refusal_in(sw, S.RUNNING) == RefuseCode.BUSY
+    assert describe.refusal_in(es, S.RUNNING) == RefuseCode.BUSY
+    assert describe.refusal_in(es, S.KILLED) == RefuseCode.KILL_LATCHED
+    assert describe.refusal_in(arm, S.ARMED) == RefuseCode.WRONG_STATE
     assert describe.refusal_in(sw, S.KILLED) is None
     kill = messages.by_name("kill")
     assert all(describe.refusal_in(kill, s) is None for s in S)  # kill works in every state

@@ -10,7 +10,8 @@ Modules (one idea each):
 * ``server``     -- the protocol server: SPEC 11.1 processing, the reply cache, a dispatch table
                     built from the message table;
 * ``telemetry``  -- telemetry rate and samples;
-* ``outbox``     -- the bounded output buffer that never blocks the tick on the link.
+* ``outbox``     -- the bounded output buffer that never blocks the tick on the link;
+* ``quirks``     -- test-only deviations from the spec (the conformance suite's own tests).
 
 The names other code imports are re-exported here.
 """
@@ -20,8 +21,9 @@ from .axes import NO_AXIS, STUCK_TICKS, THRESHOLDS, Threshold
 from .board import DeviceEvent, Firmware
 from .experiment import Experiment
 from .outbox import OUTPUT_BUFFER_LIMIT
+from .quirks import QUIRKS
 from .server import ARM_TOKEN_VALID_MS, FIRMWARE_VERSION, REPLY_CACHE_SIZE
 
-__all__ = ["ARM_TOKEN_VALID_MS", "FIRMWARE_VERSION", "NO_AXIS", "OUTPUT_BUFFER_LIMIT",
+__all__ = ["ARM_TOKEN_VALID_MS", "FIRMWARE_VERSION", "NO_AXIS", "OUTPUT_BUFFER_LIMIT", "QUIRKS",
            "REPLY_CACHE_SIZE", "STUCK_TICKS", "THRESHOLDS", "DeviceEvent", "Experiment",
            "Firmware", "Threshold", "parse_stuck"]

@@ -18,7 +18,8 @@ and :class:`TransferFunctionController` (one level on a generic plant of the sce
 ``[plant]`` table).
 
 Kill thresholds: each :class:`Threshold` names the ``kill.*`` setting that gives its default, the
-ExperimentStart field that overrides it (0 keeps the setting), the kill reason and the event text.
+ExperimentStart field that may tighten it (0 keeps the setting; a larger value is capped at
+the setting), the kill reason and the event text.
 :func:`kill_limits` turns settings and the running experiment into the limits in force, a tuple in
 the order of :data:`THRESHOLDS` (``Threshold.index``). The saturation-time threshold is in the
 same table; the tick checks it after the control step, on the time the actuator has been at its
@@ -50,7 +51,7 @@ class Threshold:
 
     index: int  # position in THRESHOLDS and in the limits tuple
     setting: str  # the kill.* setting that gives the default
-    experiment_field: str  # the ExperimentStart field that overrides it when > 0
+    experiment_field: str  # the ExperimentStart field that tightens it when > 0
     reason: KillReason
     text: str  # event text; {axis} is the axis name
     from_start_height: bool = False  # measured from the height at arming / experiment start
@@ -69,11 +70,18 @@ _BY_LOOP = {"rate": RATE, "angle": ANGLE, "heave": HEAVE}  # what a level's meas
 
 
 def kill_limits(values: dict[str, float], exp=None) -> tuple[float, ...]:
-    """The thresholds in force, in the order of THRESHOLDS: the running experiment's where it
-    gives one (> 0), else the ``kill.*`` settings."""
+    """The thresholds in force, in the order of THRESHOLDS (protocol/SPEC.md 12.2): the
+    ``kill.*`` settings, or the running experiment's where it gives a tighter one (> 0). The
+    settings are the board owner's ceiling: an experiment may tighten a threshold, never
+    loosen it."""
     if exp is None:
         return tuple(values[t.setting] for t in THRESHOLDS)
-    return tuple(getattr(exp, t.experiment_field) or values[t.setting] for t in THRESHOLDS)
+    out = []
+    for t in THRESHOLDS:
+        own = values[t.setting]
+        asked = getattr(exp, t.experiment_field)
+        out.append(min(asked, own) if asked > 0 else own)
+    return tuple(out)
 
 
 class Level:

@@ -6,8 +6,8 @@ Tick k (device time t_k = k/loop_rate_hz) does, in this order:
    ``server.py``), and the board's kill button;
 2. sample the sensors (measurements of the state at t_k through the sensor delay, with noise);
 3. safety: keepalive watchdog, kill thresholds and saturation time (ARMED and RUNNING: the
-   experiment's thresholds, or the ``kill.*`` settings where it gives 0 or none runs; the table
-   is :data:`~.axes.THRESHOLDS`) and a stuck noisy sensor (every state);
+   ``kill.*`` settings, or the running experiment's thresholds where they are tighter; the
+   table is :data:`~.axes.THRESHOLDS`) and a stuck noisy sensor (every state);
 4. control: in ARMED every axis holds its setpoint with its loops closed (angle 0 rad, the height
    at arming, 0 for a generic plant); in RUNNING the experiment's loop level runs the experiment
    (relay, step or hold, ``experiment.py``) with the inner level closed on its current gains,
@@ -50,6 +50,7 @@ from ..faults import parse_stuck
 from .axes import AXIS_ID, NO_AXIS, SATURATION, AxisController, build_axes, kill_limits
 from .experiment import Experiment, check_request, experiment_command
 from .outbox import Outbox, f32
+from .quirks import check_quirks
 from .server import ProtocolServer
 from .telemetry import TelemetryStream
 
@@ -75,7 +76,7 @@ class Firmware:
     """The simulated board. Not thread-safe: one thread calls receive/tick/take_output (the
     runner); :meth:`press_kill_button` only sets a flag and may be called from any thread."""
 
-    def __init__(self, scenario: Scenario | str, seed: int = 0):
+    def __init__(self, scenario: Scenario | str, seed: int = 0, quirks=frozenset()):
         sc = load_scenario(scenario) if not isinstance(scenario, Scenario) else scenario
         self.scenario = sc
         self.loop_rate_hz = sc.loop_rate_hz
@@ -111,6 +112,7 @@ class Firmware:
         self.outbox = Outbox(self.stats)
         self.server = ProtocolServer(self, self._rng)
         self._telemetry = TelemetryStream(self.loop_rate_hz)
+        self.quirks = quirks  # test-only deviations from the spec (quirks.py)
         self.persisted: dict[str, float] | None = None
         # called with the settings on SettingsPersist (the runner's store file); an OSError
         # there refuses the request
@@ -125,6 +127,17 @@ class Firmware:
             self.set_blocked(axis, True)
 
     # ------------------------------------------------------------------ public API
+
+    @property
+    def quirks(self) -> frozenset[str]:
+        """Test-only deviations from protocol/SPEC.md (see ``quirks.py``); empty normally."""
+        return self._quirks
+
+    @quirks.setter
+    def quirks(self, value) -> None:
+        self._quirks = check_quirks(value)
+        self._telemetry.counter_skip = "telemetry-counter-skip" in self._quirks
+        self.outbox.ack_trailing_byte = "ack-trailing-byte" in self._quirks
 
     @property
     def time_us(self) -> int:
@@ -209,10 +222,11 @@ class Firmware:
                            f"{a.name} sensor reading stuck")
         if self.state in _LIVE:
             quiet = self.link_time - server.last_rx_link
-            if quiet > self._wd:
-                wd = self._wd
+            wd = self._wd
+            if quiet > (2 * wd if "watchdog-late" in self.quirks else wd):
                 self._emit(EventKind.WATCHDOG_EXPIRED, 0, NO_AXIS, quiet, wd,
-                           "no frame from the host within watchdog_s")
+                           "no frame from the host within watchdog_s",
+                           tag=self.exp.tag if self.exp is not None else 0)
                 self._kill(KillReason.WATCHDOG, quiet, wd, NO_AXIS, "keepalive watchdog expired")
             else:
                 self._control()
@@ -242,9 +256,9 @@ class Firmware:
         """Start an experiment (Python API); raises ValueError with the refusal text."""
         if self.state != DeviceState.ARMED:
             raise ValueError(f"experiments start only when ARMED (state {self.state.name})")
-        code, text = check_request(req, self.axis_by_id)
-        if code is not None:
-            raise ValueError(text)
+        refusal = check_request(req, self.axis_by_id)
+        if refusal is not None:
+            raise ValueError(refusal.text)
         self._begin_experiment(req)
 
     def disarm(self) -> None:
@@ -349,7 +363,9 @@ class Firmware:
         self.state = DeviceState.RUNNING
         self._emit(EventKind.EXPERIMENT_STARTED, int(e.kind), a.axis_id, 0.0, 0.0,
                    f"{e.kind.name.lower()} on {a.name}.{e.loop}", tag=e.tag)
-        self._emit(EventKind.STATE_CHANGED, 0, NO_AXIS, 0.0, 0.0, f"experiment {e.tag} running")
+        # STATE_CHANGED carries the tag running after the change (protocol/SPEC.md 13.5)
+        self._emit(EventKind.STATE_CHANGED, 0, NO_AXIS, 0.0, 0.0, f"experiment {e.tag} running",
+                   tag=0 if "state-changed-tag-zero" in self.quirks else e.tag)
 
     def _kill(self, reason: KillReason, value: float, threshold: float, axis: int,
               text: str) -> None:

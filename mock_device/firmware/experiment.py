@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import NamedTuple
 
 from protocol import messages as M
 from protocol.messages import ExperimentKind, RefuseCode
@@ -58,51 +59,81 @@ class Experiment:
         return e
 
 
-def check_request(msg: M.ExperimentStart,
-                  axes: dict[int, AxisController]) -> tuple[RefuseCode | None, str]:
-    """Refusal code and text for an ExperimentStart this board cannot run, or (None, "").
-    ``axes`` maps axis ids to the board's axes. The state is checked elsewhere."""
+class Refusal(NamedTuple):
+    """Why a request is refused: the code, a text for people, and the Refuse detail."""
+
+    code: RefuseCode
+    text: str
+    detail: int = 0
+
+
+_START = {f.name: i for i, f in enumerate(M.field_specs(M.ExperimentStart))}
+_ADJUST = {f.name: i for i, f in enumerate(M.field_specs(M.ExperimentAdjust))}
+_FLOATS = ("amplitude", "hysteresis", "bias", "setpoint", "step_at_s", "duration_s",
+           "kill_angle_rad", "kill_rate_rad_s", "kill_heave_m", "kill_saturation_s")
+_THRESHOLDS = _FLOATS[6:]
+_KIND_CAPABILITY = {ExperimentKind.RELAY: M.Capability.RELAY, ExperimentKind.STEP:
+                    M.Capability.STEP, ExperimentKind.HOLD: M.Capability.HOLD}
+
+
+def check_request(msg: M.ExperimentStart, axes: dict[int, AxisController],
+                  capabilities: int = ~0) -> Refusal | None:
+    """The refusal of an ExperimentStart this board cannot run, or None, checked in the order of
+    protocol/SPEC.md 11.3 (the detail is the offending field's position in the byte table).
+    ``axes`` maps axis ids to the board's axes; the state is checked before this."""
     try:
         kind = ExperimentKind(msg.kind)
     except ValueError:
-        return RefuseCode.UNSUPPORTED, f"unknown experiment kind {msg.kind}"
+        return Refusal(RefuseCode.UNSUPPORTED, f"unknown experiment kind {msg.kind}",
+                       _START["kind"])
+    if not capabilities & _KIND_CAPABILITY[kind]:
+        return Refusal(RefuseCode.UNSUPPORTED, f"this board cannot run {kind.name}",
+                       _START["kind"])
     a = axes.get(msg.axis)
     if a is None:
-        return RefuseCode.UNSUPPORTED, (f"axis {msg.axis} not on this board; axes: "
-                                        f"{', '.join(x.name for x in axes.values())}")
+        return Refusal(RefuseCode.UNSUPPORTED, f"axis {msg.axis} not on this board; axes: "
+                       f"{', '.join(x.name for x in axes.values())}", _START["axis"])
     loop = LOOP_NAME.get(msg.loop)
     if loop not in a.levels:
-        return RefuseCode.UNSUPPORTED, (f"{a.name} has no loop level {msg.loop}; levels: "
-                                        f"{', '.join(a.levels)}")
+        return Refusal(RefuseCode.UNSUPPORTED, f"{a.name} has no loop level {msg.loop}; "
+                       f"levels: {', '.join(a.levels)}", _START["loop"])
     if msg.tag == 0:
-        return RefuseCode.BAD_PARAMETER, "tag must be non-zero"
-    vals = (msg.amplitude, msg.hysteresis, msg.bias, msg.setpoint, msg.step_at_s,
-            msg.duration_s, msg.kill_angle_rad, msg.kill_rate_rad_s, msg.kill_heave_m,
-            msg.kill_saturation_s)
-    if not all(math.isfinite(v) for v in vals):
-        return RefuseCode.BAD_PARAMETER, "experiment parameters must be finite numbers"
+        return Refusal(RefuseCode.BAD_PARAMETER, "tag must be non-zero", _START["tag"])
+    for name in _FLOATS:
+        if not math.isfinite(getattr(msg, name)):
+            return Refusal(RefuseCode.BAD_PARAMETER, f"{name} must be a finite number",
+                           _START[name])
     if msg.duration_s <= 0:
-        return RefuseCode.BAD_PARAMETER, "duration_s must be > 0"
+        return Refusal(RefuseCode.BAD_PARAMETER, "duration_s must be > 0", _START["duration_s"])
     if kind == ExperimentKind.RELAY and msg.amplitude <= 0:
-        return RefuseCode.BAD_PARAMETER, "relay amplitude must be > 0"
+        return Refusal(RefuseCode.BAD_PARAMETER, "relay amplitude must be > 0",
+                       _START["amplitude"])
     if kind == ExperimentKind.STEP and not 0 <= msg.step_at_s < msg.duration_s:
-        return RefuseCode.BAD_PARAMETER, "step_at_s must be in [0, duration_s)"
-    if min(msg.kill_angle_rad, msg.kill_rate_rad_s, msg.kill_heave_m,
-           msg.kill_saturation_s) < 0:
-        return RefuseCode.BAD_PARAMETER, "kill thresholds must be >= 0"
-    return None, ""
+        return Refusal(RefuseCode.BAD_PARAMETER, "step_at_s must be in [0, duration_s)",
+                       _START["step_at_s"])
+    for name in _THRESHOLDS:
+        if getattr(msg, name) < 0:
+            return Refusal(RefuseCode.BAD_PARAMETER, f"{name} must be >= 0", _START[name])
+    return None
 
 
-def check_adjust(msg: M.ExperimentAdjust, e: Experiment | None) -> tuple[RefuseCode | None, str]:
-    """Refusal code and text for an ExperimentAdjust of the running experiment, or (None, "")."""
-    if e is None or msg.tag != e.tag:
-        return RefuseCode.BAD_PARAMETER, f"tag {msg.tag} is not the running experiment"
-    if not all(math.isfinite(v) for v in (msg.amplitude, msg.hysteresis, msg.bias)) \
-            or msg.amplitude <= 0:
-        return RefuseCode.BAD_PARAMETER, "amplitude must be > 0, all finite"
-    if e.kind != ExperimentKind.RELAY:
-        return RefuseCode.UNSUPPORTED, "the running experiment is not a relay"
-    return None, ""
+def check_adjust(msg: M.ExperimentAdjust, e: Experiment | None,
+                 capabilities: int = ~0) -> Refusal | None:
+    """The refusal of an ExperimentAdjust of the running experiment, or None (SPEC.md 11.3)."""
+    if not capabilities & M.Capability.RELAY_ADJUST:
+        return Refusal(RefuseCode.UNSUPPORTED, "this board cannot adjust a running relay",
+                       int(M.Capability.RELAY_ADJUST))
+    if e is None or msg.tag != e.tag or e.kind != ExperimentKind.RELAY:
+        return Refusal(RefuseCode.BAD_PARAMETER, f"tag {msg.tag} names no running relay",
+                       _ADJUST["tag"])
+    for name in ("amplitude", "hysteresis", "bias"):
+        if not math.isfinite(getattr(msg, name)):
+            return Refusal(RefuseCode.BAD_PARAMETER, f"{name} must be a finite number",
+                           _ADJUST[name])
+    if msg.amplitude <= 0:
+        return Refusal(RefuseCode.BAD_PARAMETER, "relay amplitude must be > 0",
+                       _ADJUST["amplitude"])
+    return None
 
 
 def experiment_command(a: AxisController, e: Experiment, t: float) -> float:

@@ -36,6 +36,8 @@ class Outbox:
         self._deferred: list[bytes] | None = None
         self._stats = stats
         self.last_reply = b""  # the reply sent to the request being handled
+        self.last_reply_refused = False  # ... and whether it was a Refuse (never cached)
+        self.ack_trailing_byte = False  # test-only quirk "ack-trailing-byte"
 
     def send(self, msg, seq: int | None = None, reply: bool = False) -> None:
         """Encode and queue ``msg``: a reply with the request's ``seq``, or a device frame with
@@ -43,9 +45,12 @@ class Outbox:
         if seq is None:
             seq = self._seq
             self._seq = (self._seq + 1) & 0xFFFF
+        if self.ack_trailing_byte and type(msg) is M.Ack:
+            msg = M.UnknownMessage(M.BY_CLASS[M.Ack].type_id, codec.encode_payload(msg) + b"\x00")
         data = codec.encode(msg, seq, M.FLAG_REPLY if reply else 0)
         if reply:
             self.last_reply = data
+            self.last_reply_refused = isinstance(msg, M.Refuse)
             self.queue(data)
         elif self._deferred is not None:
             self._deferred.append(data)  # events a request causes follow its reply
@@ -62,6 +67,7 @@ class Outbox:
 
     def begin_request(self) -> None:
         self.last_reply = b""
+        self.last_reply_refused = False
         self._deferred = []
 
     def end_request(self) -> list[bytes]:

@@ -27,6 +27,7 @@ class TelemetryStream:
         self._axes: list[AxisController] = []
         self._loop = Loop.RATE
         self._counter = 0
+        self.counter_skip = False  # test-only quirk "telemetry-counter-skip"
 
     def configure(self, rate_hz: int, axes: list[AxisController], loop: int) -> None:
         """Report ``axes`` (in axis-id order) at ``rate_hz`` (capped at the loop rate)."""
@@ -57,5 +58,7 @@ class TelemetryStream:
             samples.append(M.AxisSample(a.axis_id, lv.loop_id, f32(lv.r), f32(lv.y),
                                         f32(lv.u), relay))
         self._counter = (self._counter + 1) & 0xFFFFFFFF
+        if self.counter_skip and self._counter % 50 == 0:
+            self._counter += 1
         return M.Telemetry(time_us=time_us, counter=self._counter, state=int(state),
                            tag=exp.tag if exp is not None else 0, axes=tuple(samples))
