@@ -167,7 +167,8 @@ def verify_applied(stand: Stand, lp: LoopPlan, plan: Plan, res: LoopResult,
                                        noise_std=res.noise_std,
                                        cand_period_s=res.relay.get("period_s"),
                                        progress=progress, stop=stop, exp_id=exp_id)
-        res.experiments.append(res.verification["experiment"])
+        if res.verification.get("experiment"):
+            res.experiments.append(res.verification["experiment"])
     except KillTripped as exc:
         res.verification = {"passed": False, "problems": [f"kill during the step: {exc}"]}
         try:

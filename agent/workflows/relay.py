@@ -42,7 +42,11 @@ class RelayRun:
         return self.experiment.exp_id
 
 
-def relay_ceiling(stand: Stand, lp: LoopPlan, inner_amplitude: float | None) -> float:
+HEADROOM_MARGIN = 0.05  # share of the output limit kept free beyond bias + amplitude
+
+
+def relay_ceiling(stand: Stand, lp: LoopPlan, inner_amplitude: float | None,
+                  trim: float = 0.0) -> float:
     """The largest relay amplitude for a loop: the plan's ``max_amplitude``, else half the
     loop's output limit; an outer relay (it commands the inner loop's setpoint) at most 1.5
     times the swing the inner loop's own relay reached with half the actuator — a larger one
@@ -52,6 +56,17 @@ def relay_ceiling(stand: Stand, lp: LoopPlan, inner_amplitude: float | None) -> 
     ceiling = lp.max_amplitude if lp.max_amplitude is not None else 0.5 * out_limit
     if inner_amplitude and lp.max_amplitude is None:
         ceiling = min(ceiling, 1.5 * inner_amplitude)
+    if lp.loop == "rate":
+        # the relay drives the actuator: bias +/- amplitude must stay inside its range, or the
+        # clipped top (a heave rail with little thrust margin) is not the relay the analysis
+        # assumes (common practice, no source)
+        headroom = (1.0 - HEADROOM_MARGIN) * out_limit - abs(trim)
+        if headroom <= 0:
+            raise WorkflowError(f"{lp.key}: the trim {trim:.3g} leaves no room in the output "
+                                f"range +/-{out_limit:g} for a relay: the loop needs almost "
+                                "all of its actuator to hold still (check the stand's balance "
+                                "or the thrust margin)")
+        ceiling = min(ceiling, headroom)
     return ceiling
 
 
@@ -74,7 +89,7 @@ def relay_experiment(stand: Stand, lp: LoopPlan, plan: Plan, *, trim: float, hys
     threshold = plan.limits.threshold(axis_i, loop_i)
     target = plan.relay_target * threshold
     out_limit = stand.session.values.get(f"{lp.axis}.{lp.loop}.out_limit", 1.0)
-    ceiling = relay_ceiling(stand, lp, inner_amplitude)
+    ceiling = relay_ceiling(stand, lp, inner_amplitude, trim)
     sup = RelaySupervisor(amplitude=0.2 * ceiling, bias=trim, target=target, ceiling=ceiling,
                           noise_std=max(float(noise_std), 0.0),
                           # precision periods end well inside the board's duration limit

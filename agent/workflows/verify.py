@@ -17,6 +17,10 @@ from .experiment import Experiment, ids
 from .results import Progress, ProgressFn, Stage, finite, quiet
 
 
+MIN_STEP_SNR = 5.0  # a step at least this many noise standard deviations (common practice,
+                    # no source): below it the verdict would rest on the noise allowance
+
+
 @dataclass(frozen=True)
 class StepPlan:
     """A step test's size and timing (board time, s)."""
@@ -112,6 +116,16 @@ def verify_step(stand: Stand, lp: LoopPlan, plan: Plan, cand, *, setpoint: float
     ``problems``, ``measured``, ``predicted_metrics``, the predicted curve, ``experiment``).
     """
     sp = plan_step(stand, lp, plan, cand, step, cand_period_s)
+    floor = MIN_STEP_SNR * noise_std if noise_std and noise_std > 0 else 0.0
+    if sp.step < floor:
+        # enlarge within what plan_step allows; refuse rather than judge a step in the noise
+        sp = plan_step(stand, lp, plan, cand, floor, cand_period_s)
+    if sp.step < floor:
+        why = (f"the largest step the limits allow ({sp.step:.3g}) is below {MIN_STEP_SNR:g} "
+               f"times the measurement noise ({noise_std:.3g}): the response could not be told "
+               "from the noise; nothing was run")
+        return {"step": sp.step, "setpoint": setpoint, "passed": False, "problems": [why],
+                "measured": None, "experiment": None, "exp_id": None}
     pred = cand.predicted
     exp = Experiment(stand, lp, plan, ExperimentKind.STEP, exp_id or f"{lp.axis}-{lp.loop}-verify",
                      {"amplitude": sp.step, "setpoint": setpoint, "step_at_s": sp.step_at_s,
