@@ -28,7 +28,9 @@ static int room(tl_writer *w, size_t n)
     return 1;
 }
 
-static void put_le(tl_writer *w, uint64_t v, size_t n)
+/* Integers up to 32 bits go through one 32-bit routine: cheaper on 32-bit cores than 64-bit
+ * shifts; a u64 is written as two halves. */
+static void put_le(tl_writer *w, uint32_t v, size_t n)
 {
     size_t k;
     if (!room(w, n))
@@ -44,7 +46,13 @@ void tl_put_u8(tl_writer *w, uint8_t v) { put_le(w, v, 1); }
 void tl_put_i8(tl_writer *w, int8_t v) { put_le(w, (uint8_t)v, 1); }
 void tl_put_u16(tl_writer *w, uint16_t v) { put_le(w, v, 2); }
 void tl_put_u32(tl_writer *w, uint32_t v) { put_le(w, v, 4); }
-void tl_put_u64(tl_writer *w, uint64_t v) { put_le(w, v, 8); }
+void tl_put_u64(tl_writer *w, uint64_t v)
+{
+    if (!room(w, 8))
+        return;
+    put_le(w, (uint32_t)(v & 0xFFFFFFFFu), 4);
+    put_le(w, (uint32_t)(v >> 32), 4);
+}
 
 void tl_put_f32(tl_writer *w, float v)
 {
@@ -77,7 +85,7 @@ void tl_put_count(tl_writer *w, size_t count, size_t max_items)
         w->error = TL_ERR_LIST;
         return;
     }
-    put_le(w, count, 1);
+    put_le(w, (uint32_t)count, 1);
 }
 
 void tl_reader_init(tl_reader *r, const uint8_t *buf, size_t len)
@@ -88,9 +96,9 @@ void tl_reader_init(tl_reader *r, const uint8_t *buf, size_t len)
     r->error = TL_OK;
 }
 
-static uint64_t get_le(tl_reader *r, size_t n)
+static uint32_t get_le(tl_reader *r, size_t n)
 {
-    uint64_t v = 0;
+    uint32_t v = 0;
     size_t k;
     if (r->error != TL_OK)
         return 0;
@@ -107,7 +115,17 @@ static uint64_t get_le(tl_reader *r, size_t n)
 uint8_t tl_get_u8(tl_reader *r) { return (uint8_t)get_le(r, 1); }
 uint16_t tl_get_u16(tl_reader *r) { return (uint16_t)get_le(r, 2); }
 uint32_t tl_get_u32(tl_reader *r) { return (uint32_t)get_le(r, 4); }
-uint64_t tl_get_u64(tl_reader *r) { return get_le(r, 8); }
+uint64_t tl_get_u64(tl_reader *r)
+{
+    uint64_t lo, hi;
+    if (r->error == TL_OK && r->len - r->pos < 8u) { /* all or nothing, like every field */
+        r->error = TL_ERR_MALFORMED;
+        return 0;
+    }
+    lo = get_le(r, 4);
+    hi = get_le(r, 4);
+    return lo | (hi << 32);
+}
 
 int8_t tl_get_i8(tl_reader *r)
 {
@@ -118,7 +136,7 @@ int8_t tl_get_i8(tl_reader *r)
 
 float tl_get_f32(tl_reader *r)
 {
-    uint32_t bits = (uint32_t)get_le(r, 4);
+    uint32_t bits = get_le(r, 4);
     float v;
     memcpy(&v, &bits, sizeof v);
     return v;
