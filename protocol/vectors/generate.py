@@ -14,10 +14,15 @@ Vector file format: a JSON list of objects, each with
   "version": int, "seq": int, "flags": int, "fields": {...}}``. ``fields`` holds wire values
   (enums as integers, lists as lists of objects). For a type id the table does not know, or a
   frame of another major version, ``type`` is null and ``payload_hex`` holds the raw payload;
-- optional ``trailing_hex``: bytes a newer minor version appended to the payload, which a decoder
-  ignores (re-encoding ``message`` then gives the frame without them);
-- rejects.json only: ``message`` is null and ``reject`` names the decoder counter that must count
-  the frame (``bad_crc``, ``bad_cobs``, ``short``, ``oversize``, ``malformed``).
+- ``type`` is the message's vector name: its name with an underscore before every capital
+  letter but the first, all lower case (ArmConfirm -> arm_confirm; SPEC.md 17.2 lists them);
+- optional ``trailing_hex``: bytes a newer minor version appended to the payload. ``frame_hex``
+  carries them after the fields; a decoder ignores them; encoding ``message`` gives another frame,
+  without them (its own CRC and COBS), that decodes to the same message;
+- rejects.json only: ``message`` is null, ``reject`` names the decoder counter that counts the
+  frame (``bad_crc``, ``bad_cobs``, ``short``, ``oversize``, ``malformed``) and ``outcome`` says
+  what the receiver does with it: ``drop`` (no reply: nothing in it can be trusted) or
+  ``refuse_malformed`` (the header is intact: a device answers Refuse MALFORMED to its seq).
 """
 
 from __future__ import annotations
@@ -186,13 +191,13 @@ REFUSE_CASES = {
     RefuseCode.WRONG_STATE: (0x32, int(DeviceState.ARMED), "no experiment running"),
     RefuseCode.UNKNOWN_SETTING: (0x12, 0x0999, "no setting with id 0x0999"),
     RefuseCode.OUT_OF_BOUNDS: (0x14, 0x0101, "value 50 above maximum 10"),
-    RefuseCode.INTERLOCK: (0x22, 0, "arming token expired"),
+    RefuseCode.INTERLOCK: (0x22, 2, "arming token expired"),
     RefuseCode.KILL_LATCHED: (0x20, int(DeviceState.KILLED), "kill latched: send kill_clear"),
-    RefuseCode.BUSY: (0x30, 7, "experiment 7 running"),
-    RefuseCode.BAD_PARAMETER: (0x30, 0, "amplitude must be positive"),
-    RefuseCode.UNSUPPORTED: (0x30, 0, "axis heave has no angle loop"),
-    RefuseCode.VERSION: (0x01, 0x20, "protocol major 2 not supported, device speaks 1.0"),
-    RefuseCode.NO_KEEPALIVE: (0x22, 0, "no keepalive within watchdog_s"),
+    RefuseCode.BUSY: (0x30, int(DeviceState.RUNNING), "experiment 7 running"),
+    RefuseCode.BAD_PARAMETER: (0x30, 4, "amplitude must be positive"),  # field 4: amplitude
+    RefuseCode.UNSUPPORTED: (0x30, 3, "axis heave has no angle loop"),  # field 3: loop
+    RefuseCode.VERSION: (0x01, 2, "protocol major 2 not supported, device speaks 1.0"),
+    RefuseCode.NO_KEEPALIVE: (0x22, 1250, "no host frame for 1250 ms before arming"),
     RefuseCode.READ_ONLY: (0x14, 0x0001, "setting is read-only"),
     RefuseCode.NOT_A_REQUEST: (0x51, 0x51, "telemetry is sent by devices"),
     RefuseCode.STORAGE: (0x15, 0, "persist failed: no space left on device"),
@@ -272,6 +277,8 @@ def edge_vectors() -> list[dict]:
             {"setting_id": 0x0101, "value": 0.75}, 5, FLAG_RETRY),
         vec("retry_kill", "retried Kill", "kill",
             {"reason": int(KillReason.HOST_LINK), "value": 0.0}, 77, FLAG_RETRY),
+        vec("nul_in_text", "U+0000 is an ordinary character of a text (counted, not a "
+            "terminator)", "hello", {"host_name": "host\u0000one"}, 2),
         vec("utf8_text", "multi-byte UTF-8 in a text field", "event",
             {"time_us": 1, "kind": int(EventKind.FAULT), "state": 0, "reason": 0, "axis": 255,
              "value": 0.0, "threshold": 0.0, "tag": 0, "text": "gyro Δ > 2000 °/s"}, 3),
@@ -320,15 +327,33 @@ def reject_vectors() -> list[dict]:
     short = cobs_encode(short_body) + b"\x00"
     bad_cobs = b"\x05\x11\x22\x00"  # first block claims 4 data bytes, 2 present
     oversize = bytes([0x01]) + b"\x7f" * 250 + b"\x00"  # 251 bytes before the delimiter
+    code_ff = bytes([0xFF]) + b"\x11" * 20 + b"\x00"  # a 0xFF block in a piece of 21 bytes
+
+    def hello(text: bytes, seq: int) -> bytes:  # a Hello whose text bytes are given raw
+        return frame(0x01, bytes([len(text)]) + text, seq, 0)
+
     rej = [
         ("bad_crc", "one bit of a valid SettingWrite frame flipped", bytes(flipped), "bad_crc"),
         ("bad_cobs", "COBS block runs past the delimiter", bad_cobs, "bad_cobs"),
+        ("cobs_code_ff", "a 0xFF code byte claims 254 bytes; a piece of at most 250 never holds "
+         "them", code_ff, "bad_cobs"),
         ("short", "fewer than 9 decoded bytes (header + CRC)", short, "short"),
         ("oversize", "251 bytes before the delimiter (maximum is 250)", oversize, "oversize"),
         ("malformed_setting_write", "CRC good, payload 3 bytes where SettingWrite needs 6",
          malformed, "malformed"),
+        ("utf8_overlong", "Hello text with the overlong form C0 AF of '/'",
+         hello(b"a\xc0\xaf", 50), "malformed"),
+        ("utf8_surrogate", "Hello text with ED A0 80, the surrogate U+D800",
+         hello(b"\xed\xa0\x80", 51), "malformed"),
+        ("utf8_above_max", "Hello text with F4 90 80 80, above U+10FFFF",
+         hello(b"\xf4\x90\x80\x80", 52), "malformed"),
+        ("utf8_truncated", "Hello text ending inside a sequence (E2 82)",
+         hello(b"x\xe2\x82", 53), "malformed"),
+        ("text_too_long", "Hello text count 65 (maximum 64)", hello(b"h" * 65, 54),
+         "malformed"),
     ]
-    return [{"name": n, "note": note, "frame_hex": b.hex(), "message": None, "reject": r}
+    return [{"name": n, "note": note, "frame_hex": b.hex(), "message": None, "reject": r,
+             "outcome": "refuse_malformed" if r == "malformed" else "drop"}
             for n, note, b, r in rej]
 
 
