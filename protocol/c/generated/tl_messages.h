@@ -63,40 +63,49 @@ enum tl_experiment_kind {
 enum tl_refuse_code {
     /* type id not in this device's table; detail = the type id */
     TL_REFUSE_CODE_UNKNOWN_TYPE = 1,
-    /* payload shorter than the message's fields, a text that is not UTF-8, or a count above its
-     * maximum
+    /* payload shorter than the message's fields, a text that is not well-formed UTF-8 or longer
+     * than 64 bytes, or a count above its maximum; detail = 0
      */
     TL_REFUSE_CODE_MALFORMED = 2,
-    /* message not legal in the current state, or a DISARMED_ONLY setting written while armed;
-     * detail = state
+    /* message not legal in the current state, or a DISARMED_ONLY setting written outside
+     * DISARMED; detail = state
      */
     TL_REFUSE_CODE_WRONG_STATE = 3,
     /* no setting with that id (SettingRead/Write) or index (SettingDescribe); detail = the id or
      * index
      */
     TL_REFUSE_CODE_UNKNOWN_SETTING = 4,
-    /* SettingWrite value outside [minimum, maximum] or NaN; detail = setting id */
+    /* SettingWrite value outside [minimum, maximum], not finite, or not whole for
+     * INT/BOOL/CHOICE; detail = setting id
+     */
     TL_REFUSE_CODE_OUT_OF_BOUNDS = 5,
-    /* ArmConfirm without a valid challenge, wrong response, expired token, or operator_confirmed
-     * != 1
+    /* ArmConfirm refused by the interlock; detail = 1 no token, 2 token expired, 3 wrong
+     * response, 4 operator_confirmed != 1
      */
     TL_REFUSE_CODE_INTERLOCK = 6,
     /* state is KILLED and the message is not legal there; detail = state (3) */
     TL_REFUSE_CODE_KILL_LATCHED = 7,
     /* SettingWrite or ExperimentStart while RUNNING; detail = state (2) */
     TL_REFUSE_CODE_BUSY = 8,
-    /* ExperimentStart/Adjust or TelemetryConfig parameter invalid (not finite, relay amplitude <=
-     * 0, duration <= 0, negative threshold or step time, no relay running or not its tag,
-     * telemetry rate above the loop rate)
+    /* ExperimentStart, ExperimentAdjust or TelemetryConfig field invalid (section 11.3); detail =
+     * the position (0-based) of the offending field in the byte table
      */
     TL_REFUSE_CODE_BAD_PARAMETER = 9,
-    /* axis, loop level or experiment kind not present on this device, or a capability it lacks */
+    /* kind, axis or loop level not on this device (detail = the field's position), or a
+     * capability it lacks (detail = the Capability bit)
+     */
     TL_REFUSE_CODE_UNSUPPORTED = 10,
     TL_REFUSE_CODE_VERSION = 11, /* frame's major version differs; detail = the received major */
-    TL_REFUSE_CODE_NO_KEEPALIVE = 12, /* ArmConfirm while the watchdog is not fresh */
+    /* ArmConfirm with no host frame within watchdog_s before it; detail = milliseconds since that
+     * frame
+     */
+    TL_REFUSE_CODE_NO_KEEPALIVE = 12,
     TL_REFUSE_CODE_READ_ONLY = 13, /* SettingWrite to a READ_ONLY setting; detail = setting id */
-    TL_REFUSE_CODE_NOT_A_REQUEST = 14, /* a device-to-host type arrived at the device */
-    /* SettingsPersist could not write the non-volatile store; the settings in use are unchanged */
+    /* a device-to-host type arrived at the device; detail = the type id */
+    TL_REFUSE_CODE_NOT_A_REQUEST = 14,
+    /* SettingsPersist could not write the non-volatile store; the settings in use are unchanged;
+     * detail = 0
+     */
     TL_REFUSE_CODE_STORAGE = 15
 };
 
@@ -118,7 +127,7 @@ enum tl_kill_reason {
 /* EventKind (values) */
 enum tl_event_kind {
     TL_EVENT_KIND_STATE_CHANGED = 1,
-    TL_EVENT_KIND_EXPERIMENT_STARTED = 2,
+    TL_EVENT_KIND_EXPERIMENT_STARTED = 2, /* reason: ExperimentKind */
     TL_EVENT_KIND_EXPERIMENT_FINISHED = 3, /* reason: FinishReason */
     /* reason: KillReason; value, threshold: offending value, limit */
     TL_EVENT_KIND_KILL_TRIPPED = 4,
