@@ -3,29 +3,51 @@
 The link owns the only threads of the host side's I/O edge:
 
 * a reader thread that feeds every received byte to the protocol's ``StreamDecoder`` and
-  dispatches frames: replies (FLAG_REPLY) complete the pending request with the same sequence
-  number; Telemetry and Event frames go to subscribers (called on the reader thread: keep them
-  short and never block). A subscriber that raises is counted (``LinkStats.subscriber_errors``)
-  and skipped: one faulty listener must not stop the replies, nor the safety monitor that
-  listens beside it;
+  dispatches frames: a reply (FLAG_REPLY) completes the pending request it answers; Telemetry
+  and Event frames go to subscribers (called on the reader thread: keep them short and never
+  block). A subscriber that raises is counted (``LinkStats.subscriber_errors``) and skipped: one
+  faulty listener must not stop the replies, nor the safety monitor that listens beside it;
 * a keepalive thread that sends ``Keepalive`` every ``keepalive_s``, whatever else is going out,
   so the device's watchdog stays fresh while the host lives (a device may require a recent
   Keepalive itself, not just any frame, before it arms: proof that this thread runs).
 
-Requests are numbered; a request whose reply does not come within ``timeout_s`` is resent
-unchanged (same sequence number) with FLAG_RETRY, so the device answers from its reply cache and
-never executes it twice. After ``retries`` resends the request fails with ``LinkTimeout``.
+Matching (protocol/SPEC.md 8). A reply answers a request only if its seq matches AND its type is
+one the message table lists for that request (``@message(..., replies=...)``): an Ack or a
+Refuse must name the request's type id, a SettingValue or SettingInfo the setting id or index
+asked for. A Refuse answers any request but a Kill (never refused). Anything else with the
+request's seq is counted (``wrong_replies``), remembered for the request's error and ignored.
+Requests (and Kills) take the next number of the request counter; Keepalives, which have no
+reply and are never cached by the board, carry a counter of their own, so the request counter
+advances only with requests (it wraps after 65536 of them, harmlessly: nothing outstanding is
+ever 16 requests old).
+
+Retries (SPEC 9). A try that gets no matching reply within its wait is resent unchanged (same
+seq) with FLAG_RETRY, so a board that did execute it answers from its reply cache and never
+executes it twice. The first wait adapts to the link (four times the median round trip of
+requests answered at their first try, Karn's rule, bounded by ``timeout_s``); each further wait
+is ``BACKOFF`` times longer, up to ``MAX_WAIT_S``. A request gives up after ``retries`` resends,
+or sooner when not a single byte has arrived for ``silent_s`` (a silent link: the board's
+watchdog has killed by then if it was armed) or when ``WRONG_GIVE_UP`` replies with its seq
+were all of another kind (a board that does not follow the protocol, not a lossy link); while the link stays silent after such a failure,
+later requests get one resend only, so that shutting down on a dead link does not take minutes.
+The ``LinkTimeout`` it raises says what arrived meanwhile (damaged frames, replies of another
+kind, intact frames, nothing at all) and, when the board reported a kill during the wait, names
+that kill first (its ``report`` attribute holds the figures as a :class:`RequestReport`).
+
+A Kill is written at once and resent with FLAG_RETRY until its own Ack arrives or the link
+ends; the board executes every Kill frame it receives (never from its cache).
 
 The link ends in one of two ways. *Lost*: a read or write of the port failed (cable pulled,
-adapter gone); ``lost_reason`` says why, the ``on_lost`` subscribers are told once, and every
-request (waiting or new) raises ``LinkError``. *Closed*: ``close()`` was called; requests waiting
-and new ones raise ``LinkError`` at once, nothing more is written and no loss is reported.
-Known limit: replies are matched on seq alone, so a reply of the wrong type is accepted.
+adapter gone, the other end closed); ``lost_reason`` says why in one line, the ``on_lost``
+subscribers are told once, and every request (waiting or new) raises ``LinkError``. *Closed*:
+``close()`` was called; requests waiting and new ones raise ``LinkError`` at once, nothing more
+is written and no loss is reported.
 """
 
 from __future__ import annotations
 
 import errno
+import random
 import re
 import statistics
 import threading
@@ -37,19 +59,22 @@ from typing import Any, Callable
 import serial
 
 from protocol import codec
-from protocol.messages import (FLAG_REPLY, FLAG_RETRY, PROTOCOL_MAJOR, Event, Keepalive, Kill,
-                               Telemetry)
+from protocol import messages as m
+from protocol.messages import (FLAG_REPLY, FLAG_RETRY, PROTOCOL_MAJOR, DeviceState, Event,
+                               EventKind, Keepalive, Kill, Telemetry)
 
+from .errors import LinkError, LinkTimeout  # re-exported: agent.link.LinkError
+from .replies import (DAMAGE_KINDS, ForeignVersion, RequestReport, answers, kind_of,
+                      loss_reason)
 
-@dataclass(frozen=True)
-class ForeignVersion:
-    """A reply in a protocol major version this host does not speak."""
-
-    major: int
-    minor: int
-
-
-from .errors import LinkError, LinkTimeout  # noqa: E402  (re-exported: agent.link.LinkError)
+TIMEOUT_S = 0.2  # the longest first wait of a request (the adaptive wait is usually shorter)
+MIN_WAIT_S = 0.05  # the shortest first wait
+RETRIES = 9  # resends after the first try
+BACKOFF = 1.5  # each wait this much longer than the one before ...
+MAX_WAIT_S = 1.0  # ... up to this
+SILENT_S = 3.0  # give up when not one byte arrived for this long (longer than a watchdog)
+WRONG_GIVE_UP = 3  # give up after this many replies of another kind (a protocol mismatch)
+KILL_MAX_WAIT_S = 0.5  # a Kill is resent at least this often until acknowledged
 
 
 @dataclass
@@ -69,6 +94,9 @@ class LinkStats:
     bytes_in: int = 0
     bytes_out: int = 0
     subscriber_errors: int = 0  # subscriber calls that raised (skipped; the reader goes on)
+    wrong_replies: int = 0  # replies with a waiting request's seq but of another kind: ignored
+    late_replies: int = 0  # replies nobody waits for (after a time-out, a second copy)
+    kills_acknowledged: int = 0
     latency_ms_last: float = float("nan")
     latency_ms_median: float = float("nan")
 
@@ -78,17 +106,25 @@ class LinkStats:
 
 
 class _Pending:
-    """One request waiting for its reply: the reader thread fills ``reply`` and sets ``event``;
-    a lost or closed link sets ``event`` with ``reply`` still None."""
+    """One request waiting for its reply: the reader thread fills ``reply`` and sets ``event``
+    (only with a reply that answers it); a lost or closed link sets ``event`` with ``reply``
+    still None. The counters at its start let its error say what arrived meanwhile."""
 
-    __slots__ = ("seq", "frame", "event", "reply", "sent_at")
+    __slots__ = ("seq", "msg", "event", "reply", "sent_at", "tries", "t0", "bytes0",
+                 "frames0", "damage0", "other")
 
-    def __init__(self, seq: int, frame: bytes):
+    def __init__(self, seq: int, msg: Any, link: "Link"):
         self.seq = seq
-        self.frame = frame
+        self.msg = msg
         self.event = threading.Event()
         self.reply: Any = None
         self.sent_at = 0.0
+        self.tries = 0
+        self.t0 = link.clock()
+        self.bytes0 = link.stats.bytes_in
+        self.frames0 = link.stats.frames_in
+        self.damage0 = link._damage_counts()
+        self.other: list[str] = []
 
 
 def _errno_of(exc: BaseException, text: str) -> int | None:
@@ -161,13 +197,16 @@ class Link:
     baudrate : int
         For a port opened by name.
     timeout_s : float
-        How long one try of a request waits for its reply (default for ``request``).
+        The longest first wait of a request for its reply (default for ``request``); the
+        waits after it grow by ``BACKOFF`` up to ``MAX_WAIT_S``.
     retries : int
         Resends after the first try (default for ``request``).
     keepalive_s : float
         Period of the keepalive thread; keep it well under the board's ``watchdog_s``.
     clock : callable
         Host time in s for stats, the keepalive stamp and the subscribers' time argument.
+    first_seq : int, optional
+        The first request's sequence number (SPEC 8: a random start by default).
 
     Raises
     ------
@@ -177,9 +216,13 @@ class Link:
     Starting the link starts its reader and keepalive threads (daemons); ``close()`` ends them.
     """
 
-    def __init__(self, port: str | Any, *, baudrate: int = 921600, timeout_s: float = 0.25,
-                 retries: int = 3, keepalive_s: float = 0.1, clock: Callable[[], float] = time.monotonic):
-        self.port_name = port if isinstance(port, str) else getattr(port, "name", repr(port))
+    def __init__(self, port: str | Any, *, baudrate: int = 921600, timeout_s: float = TIMEOUT_S,
+                 retries: int = RETRIES, keepalive_s: float = 0.1,
+                 clock: Callable[[], float] = time.monotonic, first_seq: int | None = None):
+        self.port_name = port if isinstance(port, str) else (
+            getattr(port, "name", None) or getattr(port, "port", None) or type(port).__name__)
+        if not isinstance(self.port_name, str):
+            self.port_name = type(port).__name__
         self.timeout_s = timeout_s
         self.retries = retries
         self.keepalive_s = keepalive_s
@@ -190,12 +233,18 @@ class Link:
         self._owns_port = isinstance(port, str)
         self._write_lock = threading.Lock()
         self._seq_lock = threading.Lock()
-        self._seq = 0
+        start = random.randrange(0x10000) if first_seq is None else int(first_seq)
+        self._seq = (start - 1) & 0xFFFF  # the request counter: requests and kills only
+        self._ka_seq = 0  # the keepalives' own counter
         self._pending: dict[int, _Pending] = {}
         self._telemetry_subs: list[Callable[[float, Telemetry], None]] = []
         self._event_subs: list[Callable[[float, Event], None]] = []
         self._lost_subs: list[Callable[[str], None]] = []
         self._latencies: deque[float] = deque(maxlen=200)
+        self._silent_mark: int | None = None  # bytes_in when a request last found the link mute
+        self.board_state: DeviceState | None = None  # as the board's telemetry and events say
+        self.killed_at: float | None = None  # host time the board was last seen to become KILLED
+        self.last_kill: Event | None = None  # the board's latest KILL_TRIPPED event
         self._stop = threading.Event()
         self._closed = False
         self.lost_reason: str | None = None
@@ -244,13 +293,14 @@ class Link:
             try:
                 self._ser.write(data)
             except (serial.SerialException, OSError) as exc:
-                self._mark_lost(f"write failed: {exc}")
-                raise LinkError(f"the link to {self.port_name} is lost: {exc}") from None
+                self._mark_lost(loss_reason("write", exc))
+                raise self._ended() from None
             self.stats.frames_out += 1
             self.stats.bytes_out += len(data)
 
     def send(self, msg) -> int:
-        """Send a message that expects no reply (Keepalive); any thread.
+        """Send a message that expects no reply (Keepalive), numbered on the keepalives' own
+        counter; any thread.
 
         Returns
         -------
@@ -262,23 +312,36 @@ class Link:
         LinkError
             The link is closed or lost, or the write failed (the link is then lost).
         """
-        seq = self._next_seq()
+        with self._seq_lock:
+            self._ka_seq = (self._ka_seq + 1) & 0xFFFF
+            seq = self._ka_seq
         self._write(codec.encode(msg, seq))
         return seq
 
-    def request(self, msg, *, timeout_s: float | None = None, retries: int | None = None):
-        """Send ``msg`` and wait for the reply with its sequence number; any thread but the
-        reader's (which delivers the reply).
+    def _first_wait(self, timeout_s: float) -> float:
+        """Four round trips of this link (median of first-try replies), within [MIN_WAIT_S,
+        timeout_s]; ``timeout_s`` until a round trip was measured."""
+        vals = list(self._latencies)
+        if len(vals) < 5:
+            return timeout_s
+        return min(timeout_s, max(MIN_WAIT_S, 4e-3 * statistics.median(vals)))
 
-        Each try waits ``timeout_s``; after a time-out the same frame (same seq) is resent with
-        FLAG_RETRY, up to ``retries`` times, so a board that did execute it answers from its
-        reply cache instead of executing it again.
+    def _damage_counts(self) -> tuple[int, ...]:
+        st = self.decoder.stats
+        return tuple(getattr(st, name) for name, _ in DAMAGE_KINDS)
+
+    def request(self, msg, *, timeout_s: float | None = None, retries: int | None = None,
+                silent_s: float = SILENT_S):
+        """Send ``msg`` and wait for the reply that answers it (seq and type, see the module
+        docstring); any thread but the reader's (which delivers the reply).
 
         Parameters
         ----------
         msg : a host message of protocol.messages
         timeout_s, retries : float, int, optional
-            Override the link's defaults for this call.
+            Override the link's defaults for this call (the first wait's bound, resends).
+        silent_s : float
+            Give up once not a single byte has arrived for this long.
 
         Returns
         -------
@@ -288,41 +351,67 @@ class Link:
         Raises
         ------
         LinkTimeout
-            No reply after every try.
+            No answer after every try; its text (and ``report``) says what arrived meanwhile.
         LinkError
             The link is closed or lost, before or while waiting.
         """
         timeout_s = self.timeout_s if timeout_s is None else timeout_s
         retries = self.retries if retries is None else retries
+        if self._silent_mark is not None and self.stats.bytes_in == self._silent_mark:
+            retries = min(retries, 1)  # still mute since the last request found it so
         seq = self._next_seq()
-        pend = _Pending(seq, codec.encode(msg, seq))
+        pend = _Pending(seq, msg, self)
         self._pending[seq] = pend
+        wait = self._first_wait(timeout_s)
         try:
             for attempt in range(retries + 1):
-                frame = pend.frame if attempt == 0 else codec.encode(msg, seq, FLAG_RETRY)
+                frame = codec.encode(msg, seq, FLAG_RETRY if attempt else 0)
                 if attempt:
                     self.stats.retries += 1
                 pend.sent_at = self.clock()
+                pend.tries += 1
                 self._write(frame)
-                if pend.event.wait(timeout_s):
+                if pend.event.wait(wait):
                     if pend.reply is None:  # woken by a loss or by close(), not by a reply
                         raise self._ended()
+                    self._silent_mark = None
                     return pend.reply
                 if self.lost_reason is not None or self._closed:
                     raise self._ended()
+                if self.stats.bytes_in == pend.bytes0 and self.clock() - pend.t0 >= silent_s:
+                    break
+                if len(pend.other) >= WRONG_GIVE_UP:  # answered, but never in kind: no loss
+                    break
+                wait = min(wait * BACKOFF, max(MAX_WAIT_S, timeout_s))
             self.stats.timeouts += 1
-            raise LinkTimeout(f"no reply from {self.port_name} to {type(msg).__name__} after "
-                              f"{retries + 1} tries of {timeout_s * 1000:.0f} ms. Is the board "
-                              "powered and running tetherloop protocol v1 at this baud rate?")
+            report = self._report(pend)
+            if report.bytes_in == 0:
+                self._silent_mark = self.stats.bytes_in
+            exc = LinkTimeout(report.describe(self.port_name))
+            exc.report = report
+            raise exc
         finally:
             self._pending.pop(seq, None)
+
+    def _report(self, pend: _Pending) -> RequestReport:
+        now = self.clock()
+        damage = tuple((label, n - n0) for (_, label), n, n0 in
+                       zip(DAMAGE_KINDS, self._damage_counts(), pend.damage0))
+        kill = self.last_kill if (self.last_kill is not None and self.killed_at is not None
+                                  and self.killed_at >= pend.t0) else None
+        killed = self.killed_at is not None and self.killed_at >= pend.t0
+        return RequestReport(type(pend.msg).__name__, pend.tries, now - pend.t0,
+                             self.stats.bytes_in - pend.bytes0,
+                             self.stats.frames_in - pend.frames0, damage, tuple(pend.other),
+                             kill, killed)
 
     def send_kill(self, reason: int, value: float = 0.0) -> float:
         """Write a Kill frame at once, without waiting; safe from any thread, the reader's too.
 
-        A thread of its own then makes sure of it: while no Ack with the kill's seq has come
-        within ``timeout_s``, it resends the frame with FLAG_RETRY, up to 10 times, and gives up
-        quietly when the link is lost or closed (the board's watchdog kills then).
+        A thread of its own then makes sure of it: until the Kill's own Ack arrives (a reply of
+        another kind with its seq does not count), it resends the frame with FLAG_RETRY, first
+        after ``timeout_s``, then at growing intervals up to ``KILL_MAX_WAIT_S``, and stops only
+        when the link is lost or closed (the board's watchdog kills then).
 
         Returns
         -------
@@ -336,22 +425,26 @@ class Link:
         """
         msg = Kill(reason=int(reason), value=float(value))
         seq = self._next_seq()
-        pend = _Pending(seq, codec.encode(msg, seq))
+        pend = _Pending(seq, msg, self)
         self._pending[seq] = pend
         try:
-            self._write(pend.frame)
+            self._write(codec.encode(msg, seq))
         except LinkError:
             self._pending.pop(seq, None)
             raise
         t = self.clock()
 
         def confirm():  # on the tetherloop-kill-confirm thread
+            wait = min(self.timeout_s, KILL_MAX_WAIT_S)
             try:
-                for _ in range(10):
-                    if pend.event.wait(self.timeout_s) or self.lost_reason is not None:
+                while not pend.event.wait(wait):
+                    if self.lost_reason is not None or self._closed:
                         return
                     self.stats.retries += 1
                     self._write(codec.encode(msg, seq, FLAG_RETRY))
+                    wait = min(wait * BACKOFF, KILL_MAX_WAIT_S)
+                if pend.reply is not None:
+                    self.stats.kills_acknowledged += 1
             except LinkError:
                 return
             finally:
@@ -385,7 +478,7 @@ class Link:
             except (serial.SerialException, OSError, TypeError, AttributeError) as exc:
                 if self._stop.is_set():
                     return
-                self._mark_lost(f"read failed: {exc}")
+                self._mark_lost(loss_reason("read", exc))
                 return
             if not data:
                 continue
@@ -405,22 +498,46 @@ class Link:
             self.stats.foreign_version += 1
             msg = ForeignVersion(frame.major, frame.minor)
         if frame.flags & FLAG_REPLY:
-            # a reply nobody waits for any more (late, after a time-out) is dropped here; the
-            # first reply to a resent request wins, the board's cached copy is the same bytes
-            pend = self._pending.get(frame.seq)
-            if pend is not None and not pend.event.is_set():
-                pend.reply = msg
-                lat = (now - pend.sent_at) * 1000.0
-                self._latencies.append(lat)
-                self.stats.latency_ms_last = lat
-                pend.event.set()
+            self._take_reply(now, frame.seq, msg)
             return
         if isinstance(msg, Telemetry):
             self.stats.telemetry += 1
+            self._note_state(now, msg.state)
             self._tell(self._telemetry_subs, now, msg)
         elif isinstance(msg, Event):
             self.stats.events += 1
+            if msg.kind == EventKind.KILL_TRIPPED:
+                self.last_kill = msg
+                self.killed_at = now
+            self._note_state(now, msg.state)
             self._tell(self._event_subs, now, msg)
+
+    def _take_reply(self, now: float, seq: int, msg: Any) -> None:
+        pend = self._pending.get(seq)
+        if pend is None or pend.event.is_set():
+            # late (after a time-out) or a second copy (the board's cache answering a resend)
+            self.stats.late_replies += 1
+            return
+        if not answers(pend.msg, msg):
+            self.stats.wrong_replies += 1
+            pend.other.append(kind_of(msg))
+            return
+        pend.reply = msg
+        lat = (now - pend.sent_at) * 1000.0
+        self.stats.latency_ms_last = lat
+        if pend.tries == 1:  # Karn's rule: a resent request's round trip is ambiguous
+            self._latencies.append(lat)
+        if isinstance(msg, m.Ack):
+            self._note_state(now, msg.state)
+        pend.event.set()
+
+    def _note_state(self, now: float, state: int) -> None:
+        if state not in DeviceState._value2member_map_:
+            return
+        state = DeviceState(state)
+        if state == DeviceState.KILLED and self.board_state != DeviceState.KILLED:
+            self.killed_at = now
+        self.board_state = state
 
     def _tell(self, subs: list, now: float, msg) -> None:
         for fn in tuple(subs):  # a copy: subscribing from another thread must not break this
@@ -443,8 +560,8 @@ class Link:
                 pass
 
     def latency_ms_median(self) -> float:
-        """Median request latency (ms) of the last 200 replies, NaN before the first; also
-        stored in ``stats.latency_ms_median``."""
+        """Median round trip (ms) of the last 200 requests answered at their first try, NaN
+        before the first; also stored in ``stats.latency_ms_median``."""
         vals = list(self._latencies)
         self.stats.latency_ms_median = statistics.median(vals) if vals else float("nan")
         return self.stats.latency_ms_median

@@ -18,7 +18,7 @@ import pytest
 from agent.errors import LinkError, LinkTimeout
 from agent.link import ForeignVersion, Link, open_port
 from mock_device.transports import InprocLink
-from protocol import codec
+from protocol import cobs, codec
 from protocol import messages as m
 
 
@@ -179,14 +179,15 @@ def test_a_lost_reply_is_asked_again_with_the_retry_flag_and_the_same_seq(links)
 
 def test_no_reply_raises_link_timeout_after_every_try(links):
     link, peer = links(silent, timeout_s=0.02, retries=2)
-    with pytest.raises(LinkTimeout, match=r"no reply from fake-peer to Disarm after 3 tries"):
+    with pytest.raises(LinkTimeout, match=r"no reply to Disarm from fake-peer after 3 tries over "
+                       r".*: nothing arrived at all: is the board powered"):
         link.request(m.Disarm())
     tries = peer.of_type(m.Disarm)
     assert len(tries) == 3 and len({f.seq for f in tries}) == 1
     assert [f.flags for f in tries] == [0, m.FLAG_RETRY, m.FLAG_RETRY]
     assert link.stats.timeouts == 1 and link.stats.retries == 2
     # the per-call arguments win over the link's
-    with pytest.raises(LinkTimeout, match="after 1 tries"):
+    with pytest.raises(LinkTimeout, match="after 1 try "):
         link.request(m.Disarm(), retries=0)
     assert len(peer.of_type(m.Disarm)) == 4
 
@@ -375,3 +376,213 @@ def test_open_port_says_what_was_wrong_and_what_to_do(port, text):
 def test_open_port_passes_an_open_port_through():
     peer = FakePeer()
     assert open_port(peer) is peer
+
+
+# ---------------------------------------------------------------- matching on seq and type
+
+def test_a_reply_of_another_kind_with_the_requests_seq_is_counted_and_ignored(links):
+    def respond(frame):
+        if isinstance(frame.msg, m.SettingRead):
+            return [ack(frame),  # an Ack is no answer to SettingRead (the message table)
+                    reply(frame, m.SettingValue(setting_id=99, value=9.0)),  # another setting
+                    reply(frame, m.Ack(acked_type=0x14, state=0)),  # an Ack of another type
+                    reply(frame, m.SettingValue(setting_id=3, value=1.5))]
+        return ()
+
+    link, peer = links(respond)
+    assert link.request(m.SettingRead(setting_id=3)) == m.SettingValue(setting_id=3, value=1.5)
+    assert link.stats.wrong_replies == 3
+
+
+def test_a_refusal_answers_only_the_request_it_names(links):
+    def respond(frame):
+        if isinstance(frame.msg, m.SettingsPersist):
+            return [reply(frame, m.Refuse(refused_type=0x12, code=3, detail=0, text="other")),
+                    reply(frame, m.Refuse(refused_type=0x15, code=15, detail=0, text="mine"))]
+        return ()
+
+    link, _ = links(respond)
+    assert link.request(m.SettingsPersist()).text == "mine"
+    assert link.stats.wrong_replies == 1
+
+
+def test_a_kill_is_resent_until_its_own_ack_arrives(links):
+    # A board that answers a retried Kill from its reply cache with another request's reply
+    # (seq alone matched) must not end the resending: only an Ack of the Kill counts.
+    answered = []
+
+    def respond(frame):
+        if not isinstance(frame.msg, m.Kill) or not frame.flags & m.FLAG_RETRY:
+            return ()  # the first Kill frame is lost
+        answered.append(frame)
+        if len(answered) <= 2:
+            return [reply(frame, m.SettingValue(setting_id=1, value=0.5)),
+                    reply(frame, m.Ack(acked_type=0x12, state=0)),
+                    reply(frame, m.Refuse(refused_type=0x40, code=3, detail=0, text=""))]
+        return [ack(frame, m.DeviceState.KILLED)]
+
+    link, peer = links(respond)
+    link.send_kill(m.KillReason.HOST_MONITOR)
+    assert wait_for(lambda: link.stats.kills_acknowledged == 1)
+    assert wait_for(lambda: not link._pending)
+    kills = peer.of_type(m.Kill)
+    assert len(kills) == 4 and len({f.seq for f in kills}) == 1
+    assert link.stats.wrong_replies == 6
+
+
+def test_keepalives_do_not_advance_the_request_counter(links):
+    def respond(frame):
+        if isinstance(frame.msg, m.Disarm):
+            return [ack(frame)]
+        return ()
+
+    link, peer = links(respond, keepalive_s=0.002)
+    link.request(m.Disarm())
+    n = len(peer.of_type(m.Keepalive))
+    assert wait_for(lambda: len(peer.of_type(m.Keepalive)) >= n + 20)
+    link.request(m.Disarm())
+    first, second = (f.seq for f in peer.of_type(m.Disarm))
+    assert second == (first + 1) & 0xFFFF
+    ka = [f.seq for f in peer.of_type(m.Keepalive)]
+    assert all(b == (a + 1) & 0xFFFF for a, b in zip(ka, ka[1:]))  # their own counter
+
+
+def test_the_request_counter_wraps_and_replies_still_match(links):
+    late = []
+
+    def respond(frame):
+        if isinstance(frame.msg, m.SettingRead):
+            out = [reply(f, m.SettingValue(setting_id=f.msg.setting_id, value=-1.0))
+                   for f in late]  # every earlier request's reply comes again, late
+            late.append(frame)
+            return out + [reply(frame, m.SettingValue(setting_id=frame.msg.setting_id,
+                                                      value=float(frame.msg.setting_id)))]
+        return ()
+
+    link, peer = links(respond, first_seq=0xFFFE)
+    got = [link.request(m.SettingRead(setting_id=i)).value for i in range(1, 5)]
+    assert got == [1.0, 2.0, 3.0, 4.0]
+    assert [f.seq for f in peer.of_type(m.SettingRead)] == [0xFFFE, 0xFFFF, 0, 1]
+    assert link.stats.late_replies == 6
+
+
+# ---------------------------------------------------------------- what a failed request saw
+
+def damaged(msg, seq: int = 7) -> bytes:
+    """A frame with one bit flipped inside: its COBS is sound, its CRC fails."""
+    body = bytearray(cobs.decode(codec.encode(msg, seq, m.FLAG_REPLY)[:-1]))
+    body[6] ^= 0x04
+    return cobs.encode(bytes(body)) + b"\x00"
+
+
+def test_giving_up_names_the_damaged_frames_that_arrived(links):
+    def respond(frame):
+        if isinstance(frame.msg, m.SettingRead):
+            return [damaged(m.SettingValue(setting_id=1, value=2.0), frame.seq)] * 2
+        return ()
+
+    link, _ = links(respond, timeout_s=0.02, retries=3)
+    with pytest.raises(LinkTimeout, match=r"no reply to SettingRead from fake-peer after 4 tries "
+                       r"over .* s: 8 damaged frames arrived meanwhile \(8 CRC errors\): the "
+                       r"link is corrupting data — check the cable") as err:
+        link.request(m.SettingRead(setting_id=1))
+    assert err.value.report.damaged_total == 8 and err.value.report.tries == 4
+
+
+def test_giving_up_names_replies_of_another_kind(links):
+    def respond(frame):
+        if isinstance(frame.msg, m.SettingRead):
+            return [ack(frame)]
+        return ()
+
+    link, peer = links(respond, timeout_s=0.02, retries=9)
+    with pytest.raises(LinkTimeout, match=r"3 replies with its sequence number were of another "
+                       r"kind \(Ack of 0x12\) and were ignored"):
+        link.request(m.SettingRead(setting_id=1))
+    assert len(peer.of_type(m.SettingRead)) == 3  # a board that never answers in kind
+
+
+def test_giving_up_says_when_the_board_talks_but_does_not_answer(links):
+    def respond(frame):
+        if isinstance(frame.msg, m.SettingRead):
+            return [codec.encode(telemetry(1), 5)]
+        return ()
+
+    link, _ = links(respond, timeout_s=0.02, retries=2)
+    with pytest.raises(LinkTimeout, match=r"3 intact frames arrived meanwhile, none of them its "
+                       r"answer"):
+        link.request(m.SettingRead(setting_id=1))
+
+
+def test_giving_up_after_the_boards_watchdog_killed_names_the_kill(links):
+    def respond(frame):
+        if isinstance(frame.msg, m.SettingRead) and not frame.flags & m.FLAG_RETRY:
+            kill = m.Event(time_us=9, kind=int(m.EventKind.KILL_TRIPPED),
+                           state=int(m.DeviceState.KILLED), reason=int(m.KillReason.WATCHDOG),
+                           axis=255, value=1.2, threshold=1.0, text="keepalive watchdog expired")
+            return [codec.encode(kill, 40)]
+        return ()
+
+    link, _ = links(respond, timeout_s=0.02, retries=2)
+    with pytest.raises(LinkTimeout) as err:
+        link.request(m.SettingRead(setting_id=1))
+    text = str(err.value)
+    assert text.startswith("the board on fake-peer killed while SettingRead waited for its "
+                           "answer (its watchdog: no frame from the host reached it")
+    assert "no reply to" not in text and "clear the kill" in text
+
+
+def test_a_silent_link_is_given_up_early_and_then_tried_briefly(links):
+    link, peer = links(silent, timeout_s=0.01, retries=1000)
+    with pytest.raises(LinkTimeout, match="nothing arrived at all") as err:
+        link.request(m.Disarm(), silent_s=0.2)
+    assert err.value.report.elapsed_s >= 0.2 and err.value.report.tries < 100
+    # the waits grow: 0.01 s, then 1.5 times longer each time, up to MAX_WAIT_S
+    assert err.value.report.tries <= 8
+    n = len(peer.of_type(m.Disarm))
+    with pytest.raises(LinkTimeout):
+        link.request(m.Disarm())  # still nothing since: one resend only
+    assert len(peer.of_type(m.Disarm)) == n + 2
+
+
+# ---------------------------------------------------------------- a lost link in one line
+
+class FailingRead(FakePeer):
+    """A peer whose reads fail with ``exc`` once ``armed`` is set."""
+
+    def __init__(self, exc: BaseException):
+        super().__init__()
+        self.exc = exc
+        self.armed = threading.Event()
+
+    def read(self, size: int = 1) -> bytes:
+        if self.armed.is_set():
+            raise self.exc
+        return super().read(size)
+
+
+@pytest.mark.parametrize("exc, words", [
+    # pyserial's socket:// wraps its own SerialException in a second "read failed: "
+    (__import__("serial").SerialException("read failed: socket disconnected"),
+     "read failed: the other end closed the connection"),
+    (__import__("serial").SerialException("device reports readiness to read but returned no "
+                                          "data (device disconnected or multiple access on "
+                                          "port?)"),
+     "read failed: the device is gone: the adapter was unplugged"),
+    (OSError(5, "Input/output error"), "read failed: input/output error: the adapter was "
+                                       "unplugged or lost power"),
+])
+def test_a_lost_link_is_one_clear_line(exc, words):
+    peer = FailingRead(exc)
+    link = Link(peer, keepalive_s=30.0)
+    try:
+        peer.armed.set()
+        assert wait_for(lambda: link.lost_reason is not None)
+        reason = link.lost_reason
+        assert reason.startswith(words) and reason.count("read failed") == 1
+        assert "\n" not in reason
+        with pytest.raises(LinkError) as err:
+            link.request(m.Disarm())
+        assert str(err.value) == f"the link to fake-peer is lost ({reason})"
+    finally:
+        link.close()
