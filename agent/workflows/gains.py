@@ -95,8 +95,17 @@ def rollback(stand: Stand, res: LoopResult, progress: ProgressFn = quiet,
                               why=res.message)
     except (SessionError, LinkError) as exc:
         res.status = LoopStatus.ROLLBACK_FAILED
-        stand.log_event("rollback_failed", loop=res.key, error=str(exc))
-        progress(Progress(Stage.ROLLBACK, f"{res.key}: ROLLBACK FAILED: {exc}", res.key))
+        # what the board holds, as read back (the write set's error says it when it got that
+        # far; else the host's record, which holds only read-back values)
+        board = getattr(exc, "board", None)
+        held = board.describe() if board is not None else ", ".join(
+            f"{k}={stand.session.values[k]:.6g}" if k in stand.session.values else f"{k} unknown"
+            for k in target if k in stand.session.settings)
+        text = str(exc) if board is not None else f"{exc}; the board holds {held}"
+        res.message = f"ROLLBACK FAILED: {text}" + (f" (rolling back: {res.message})"
+                                                     if res.message else "")
+        stand.log_event("rollback_failed", loop=res.key, error=str(exc), board=held)
+        progress(Progress(Stage.ROLLBACK, f"{res.key}: ROLLBACK FAILED: {text}", res.key))
         return False
     res.applied_gains = written
     progress(Progress(Stage.ROLLBACK, f"{res.key}: rolled back to the previous gains "

@@ -136,7 +136,7 @@ def noise_check(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = q
 
 
 def lift_off(stand: Stand, plan: Plan, progress: ProgressFn = quiet,
-             stop: threading.Event | None = None) -> float | None:
+             stop: threading.Event | None = None, for_loop: str = "heave") -> float | None:
     """Lift the frame off the heave rail's bottom stop before identifying the heave loops.
 
     A frame resting on the stop cannot be identified (the stop clamps its motion): the height
@@ -156,7 +156,7 @@ def lift_off(stand: Stand, plan: Plan, progress: ProgressFn = quiet,
         return None
     progress(Progress(Stage.INFO, f"heave: lifting the frame {lift:.2f} m off the bottom stop",
                       lp.key))
-    exp = Experiment(stand, lp, plan, ExperimentKind.STEP, "heave-heave-lift",
+    exp = Experiment(stand, lp, plan, ExperimentKind.STEP, f"heave-{for_loop}-lift",
                      {"amplitude": lift, "setpoint": height, "step_at_s": 0.2,
                       "duration_s": LIFT_S}, reference=height, stop=stop)
     with exp:

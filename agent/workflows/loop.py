@@ -44,7 +44,7 @@ def tune_loop(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = qui
     res = LoopResult(lp.key, lp.axis, lp.loop, lp.controller)
     stand.emit(Notice.LOOP, {"key": lp.key, "status": str(LoopStatus.RUNNING)})
     if lp.axis == "heave":
-        lift_off(stand, plan, progress, stop)
+        lift_off(stand, plan, progress, stop, for_loop=lp.loop)
     noise = noise_check(stand, lp, plan, progress, stop)
     res.experiments.append(f"{lp.axis}-{lp.loop}-hold")
     res.noise_std, res.trim = noise["noise_std"], noise["trim"]
