@@ -90,7 +90,8 @@ def cache_dir() -> Path:
         base = Path(os.environ["TETHERLOOP_CACHE_DIR"])
     else:
         base = Path(os.environ.get("XDG_CACHE_HOME") or Path.home() / ".cache") / "tetherloop"
-    for folder in (base / "c-build", Path(tempfile.gettempdir()) / f"tetherloop-c-{getattr(os, 'getuid', lambda: 0)()}"):
+    user = getattr(os, "getuid", lambda: 0)()
+    for folder in (base / "c-build", Path(tempfile.gettempdir()) / f"tetherloop-c-{user}"):
         try:
             folder.mkdir(parents=True, exist_ok=True)
             if os.access(folder, os.W_OK):
