@@ -37,8 +37,8 @@ from pathlib import Path
 from . import messages
 from .describe import _NOTES
 from .codec import CRC, HEADER, MAX_ENCODED, MAX_PAYLOAD, MAX_RAW, VERSION_BYTE
-from .messages import (_SIZES, ANY_STATE, FLAG_REPLY, FLAG_RETRY, MAX_LIST_ITEMS, MAX_STR_BYTES, MESSAGES,
-                       PROTOCOL_MAJOR, PROTOCOL_MINOR, DeviceState, FieldSpec, field_specs)
+from .messages import (_SIZES, ANY_STATE, FLAG_REPLY, FLAG_RETRY, MAX_LIST_ITEMS, MAX_STR_BYTES,
+                       MESSAGES, PROTOCOL_MAJOR, PROTOCOL_MINOR, DeviceState, FieldSpec, field_specs)
 
 HEADER_NAME = "tl_messages.h"
 SOURCE_NAME = "tl_messages.c"
@@ -206,7 +206,7 @@ def _header() -> str:
     out += ["", "/* Bit of a DeviceState in a legal_in mask. */",
             "#define TL_STATE_BIT(state) (1u << (state))",
             f"#define TL_STATES_ANY 0x{_state_mask(ANY_STATE):02X}u /* every DeviceState */", ""]
-    out.append("/* ------------------------------------------------------------ message type ids */")
+    out.append("/* ------------------------------------------------------------ type ids */")
     out.append("enum tl_msg_id {")
     out.append(",\n".join(f"    TL_MSG_{spec.name.upper()} = 0x{tid:02X}"
                           for tid, spec in sorted(MESSAGES.items())))
@@ -233,7 +233,7 @@ def _header() -> str:
         out += _comment(f"0x{tid:02X} {spec.cls.__name__} ({arrow}): {spec.doc}")
         out.append("typedef struct {")
         if not spec.fields:
-            out.append("    uint8_t no_fields_; /* the payload is empty; C99 has no empty struct */")
+            out.append("    uint8_t no_fields_; /* empty payload; C99 has no empty struct */")
         for f in spec.fields:
             _check_field(f, spec.cls.__name__)
             if f.wire == "str":
@@ -263,8 +263,8 @@ def _header() -> str:
             "/* ------------------------------------------------------------ codec */",
             "/* tl_encode_<name>: write the payload into out (cap bytes); returns its length or a",
             " * negative tl_status (TL_ERR_NO_ROOM, TL_ERR_TEXT, TL_ERR_LIST).",
-            " * tl_decode_<name>: read a payload of n bytes; TL_OK or TL_ERR_MALFORMED. Bytes after",
-            " * the last field are ignored (a newer minor version may append fields). */"]
+            " * tl_decode_<name>: read a payload of n bytes; TL_OK or TL_ERR_MALFORMED. Bytes",
+            " * after the last field are ignored (a newer minor version may append fields). */"]
     for _, spec in sorted(MESSAGES.items()):
         out.append(f"int tl_encode_{spec.name}(const tl_{spec.name} *m, uint8_t *out, "
                    "size_t cap);")

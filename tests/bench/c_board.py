@@ -167,7 +167,8 @@ def main(argv: list[str] | None = None) -> int:
               f"{result['flash_bytes']} B, static RAM {result['ram_bytes']} B (library "
               f"{result['library_static_ram_bytes']} B + receive/transmit state "
               f"{result['board_state_ram_bytes']} B); largest stack frame "
-              f"{result['stack_largest_frame_bytes']} B ({result['stack_largest_frame_function']}); "
+              f"{result['stack_largest_frame_bytes']} B "
+              f"({result['stack_largest_frame_function']}); "
               f"linked example text {ex['text']} data {ex['data']} bss {ex['bss']}")
     print(f"host ({result['host_compiler']}, -O2), {result['frames']} rounds, load average "
           f"{result['load_average']}: decode of a 4-axis telemetry frame "

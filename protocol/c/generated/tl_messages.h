@@ -174,7 +174,7 @@ enum tl_capability {
 #define TL_STATE_BIT(state) (1u << (state))
 #define TL_STATES_ANY 0x0Fu /* every DeviceState */
 
-/* ------------------------------------------------------------ message type ids */
+/* ------------------------------------------------------------ type ids */
 enum tl_msg_id {
     TL_MSG_HELLO = 0x01,
     TL_MSG_HELLO_REPLY = 0x02,
@@ -321,14 +321,14 @@ typedef struct {
  * non-volatile memory.
  */
 typedef struct {
-    uint8_t no_fields_; /* the payload is empty; C99 has no empty struct */
+    uint8_t no_fields_; /* empty payload; C99 has no empty struct */
 } tl_settings_persist;
 
 /* 0x20 ArmRequest (host -> device): First half of the arming interlock: the device answers with a
  * fresh random token.
  */
 typedef struct {
-    uint8_t no_fields_; /* the payload is empty; C99 has no empty struct */
+    uint8_t no_fields_; /* empty payload; C99 has no empty struct */
 } tl_arm_request;
 
 /* 0x21 ArmChallenge (device -> host): Arming token; valid for ``valid_ms`` and for one ArmConfirm
@@ -353,7 +353,7 @@ typedef struct {
  * the kill stays latched.
  */
 typedef struct {
-    uint8_t no_fields_; /* the payload is empty; C99 has no empty struct */
+    uint8_t no_fields_; /* empty payload; C99 has no empty struct */
 } tl_disarm;
 
 /* 0x30 ExperimentStart (host -> device): Start an on-board experiment on one axis and loop level.
@@ -408,7 +408,7 @@ typedef struct {
  * state.
  */
 typedef struct {
-    uint8_t no_fields_; /* the payload is empty; C99 has no empty struct */
+    uint8_t no_fields_; /* empty payload; C99 has no empty struct */
 } tl_kill_clear;
 
 /* 0x50 TelemetryConfig (host -> device): Choose telemetry: rate (0 = off, at most the loop rate),
@@ -493,8 +493,8 @@ const tl_msg_info *tl_msg_find(uint8_t type_id);
 /* ------------------------------------------------------------ codec */
 /* tl_encode_<name>: write the payload into out (cap bytes); returns its length or a
  * negative tl_status (TL_ERR_NO_ROOM, TL_ERR_TEXT, TL_ERR_LIST).
- * tl_decode_<name>: read a payload of n bytes; TL_OK or TL_ERR_MALFORMED. Bytes after
- * the last field are ignored (a newer minor version may append fields). */
+ * tl_decode_<name>: read a payload of n bytes; TL_OK or TL_ERR_MALFORMED. Bytes
+ * after the last field are ignored (a newer minor version may append fields). */
 int tl_encode_hello(const tl_hello *m, uint8_t *out, size_t cap);
 int tl_decode_hello(const uint8_t *p, size_t n, tl_hello *m);
 int tl_encode_hello_reply(const tl_hello_reply *m, uint8_t *out, size_t cap);
