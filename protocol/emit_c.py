@@ -38,7 +38,8 @@ from . import messages
 from .describe import _NOTES
 from .codec import CRC, HEADER, MAX_ENCODED, MAX_PAYLOAD, MAX_RAW, VERSION_BYTE
 from .messages import (_SIZES, ANY_STATE, FLAG_REPLY, FLAG_RETRY, MAX_LIST_ITEMS, MAX_STR_BYTES,
-                       MESSAGES, PROTOCOL_MAJOR, PROTOCOL_MINOR, DeviceState, FieldSpec, field_specs)
+                       MESSAGES, PROTOCOL_MAJOR, PROTOCOL_MINOR, DeviceState, FieldSpec,
+                       field_specs)
 
 HEADER_NAME = "tl_messages.h"
 SOURCE_NAME = "tl_messages.c"
