@@ -200,7 +200,8 @@ def test_the_relay_stays_inside_the_actuators_headroom():
     # common practice, no source: bias +/- amplitude inside the output range; before, a heave
     # rail with little thrust margin ran its relay at 0.93 +/- 0.15 (clipped at full thrust)
     from agent.workflows.relay import HEADROOM_MARGIN, relay_ceiling
-    stand = SimpleNamespace(session=SimpleNamespace(values={"heave.rate.out_limit": 1.0}))
+    stand = SimpleNamespace(session=SimpleNamespace(values={"heave.rate.out_limit": 1.0,
+                                                            "heave.rate.ff": 0.0}))
     lp = LoopPlan("heave", "rate", max_amplitude=0.5)
     assert relay_ceiling(stand, lp, None, trim=0.8) == pytest.approx(1 - HEADROOM_MARGIN - 0.8)
     assert relay_ceiling(stand, lp, None, trim=0.0) == 0.5
@@ -216,3 +217,15 @@ def test_rest_is_judged_on_the_trend_not_on_the_noise():
     assert drift_over(t, still) < 0.005
     moving = still + 0.5 * t  # 0.5 units/s: 0.15 over the window
     assert drift_over(t, moving) == pytest.approx(0.15, abs=0.01)
+
+
+def test_the_headroom_counts_from_the_feed_forward():
+    # the board's output limit applies around its feed-forward (a hover trim): a trim at the
+    # feed-forward leaves the whole limit to the relay
+    from agent.workflows.relay import HEADROOM_MARGIN, relay_ceiling
+    stand = SimpleNamespace(session=SimpleNamespace(values={"heave.rate.out_limit": 0.5,
+                                                            "heave.rate.ff": 0.42}))
+    lp = LoopPlan("heave", "rate")
+    assert relay_ceiling(stand, lp, None, trim=0.44) == pytest.approx(0.25)
+    assert relay_ceiling(stand, lp, None, trim=0.42 + 0.4) == pytest.approx(
+        (1 - HEADROOM_MARGIN) * 0.5 - 0.4)

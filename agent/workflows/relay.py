@@ -57,10 +57,12 @@ def relay_ceiling(stand: Stand, lp: LoopPlan, inner_amplitude: float | None,
     if inner_amplitude and lp.max_amplitude is None:
         ceiling = min(ceiling, 1.5 * inner_amplitude)
     if lp.loop == "rate":
-        # the relay drives the actuator: bias +/- amplitude must stay inside its range, or the
-        # clipped top (a heave rail with little thrust margin) is not the relay the analysis
-        # assumes (common practice, no source)
-        headroom = (1.0 - HEADROOM_MARGIN) * out_limit - abs(trim)
+        # the relay drives the actuator: bias +/- amplitude must stay inside the controller's
+        # output range (out_limit around the feed-forward ff), or the clipped top (a heave rail
+        # with little thrust margin) is not the relay the analysis assumes (common practice,
+        # no source)
+        ff = stand.session.values.get(f"{lp.axis}.{lp.loop}.ff", 0.0)
+        headroom = (1.0 - HEADROOM_MARGIN) * out_limit - abs(trim - ff)
         if headroom <= 0:
             raise WorkflowError(f"{lp.key}: the trim {trim:.3g} leaves no room in the output "
                                 f"range +/-{out_limit:g} for a relay: the loop needs almost "
