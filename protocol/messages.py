@@ -1,8 +1,9 @@
-"""The message table of tetherloop protocol v1: the single source of truth.
+"""The message table of tetherloop protocol v1.
 
-Every message is a frozen dataclass whose fields carry their wire type in metadata. The codec, the
-description printed by ``tetherloop protocol --describe``, SPEC.md's tables and the mock device's
-server all read this module; nothing else defines a layout.
+protocol/SPEC.md is normative: a board conforms to it. This table is where the program keeps the
+layouts: every message is a frozen dataclass whose fields carry their wire type in metadata. The
+codec, the description printed by ``tetherloop protocol --describe``, SPEC.md's byte tables and
+the mock device's server all read this module, so that none of them defines a layout of its own.
 
 Wire types (all little-endian):
 
@@ -19,7 +20,7 @@ str      1+n    u8 byte count n (0..64) then n bytes of UTF-8, no terminator
 list     1+k*m  u8 item count k (0..16) then k items of a fixed item layout (m bytes)
 =======  =====  ==============================================================
 
-Device state machine (normative; SPEC.md restates it with tables):
+Device state machine (a summary; SPEC.md sections 9-13 are the rule):
 
 - States: DISARMED (outputs zero), ARMED (loops closed, outputs live), RUNNING (armed and running
   one experiment), KILLED (outputs zero, latched). Boot state: DISARMED.
@@ -28,10 +29,11 @@ Device state machine (normative; SPEC.md restates it with tables):
   runs (SettingWrite, ExperimentStart while RUNNING). Device-to-host types received by a device:
   Refuse NOT_A_REQUEST. Unknown type ids: Refuse UNKNOWN_TYPE. A payload that does not decode:
   Refuse MALFORMED. A frame whose protocol major differs: Refuse VERSION (sent in the device's own
-  version). The device never crashes or changes state on a refused message.
+  version), except a Kill, which is executed in every major. The device never crashes or changes
+  state on a refused message.
 - Arming interlock: ArmRequest (DISARMED) -> ArmChallenge(token, valid_ms). ArmConfirm with
-  response == token ^ 0xFFFFFFFF, operator_confirmed == 1, within valid_ms, with the watchdog fresh
-  -> Ack, state ARMED. Otherwise Refuse INTERLOCK (token wrong/expired/absent or operator flag 0) or
+  response == token ^ 0xFFFFFFFF, operator_confirmed == 1, within valid_ms, with a host frame
+  (any type) within watchdog_s before it -> Ack, state ARMED. Otherwise Refuse INTERLOCK (token wrong/expired/absent or operator flag 0) or
   NO_KEEPALIVE. A token is good for one ArmConfirm only.
 - Watchdog: any valid frame from the host refreshes it. While ARMED or RUNNING, if no host frame
   arrives for ``watchdog_s`` (a setting), the device kills with reason WATCHDOG (events
@@ -46,8 +48,9 @@ Device state machine (normative; SPEC.md restates it with tables):
   by Disarm or by a kill, each with EXPERIMENT_FINISHED(reason) and the device back in ARMED (or
   DISARMED/KILLED). Every state change also sends STATE_CHANGED.
 - Replies: a reply frame carries the request's seq and FLAG_REPLY. The device keeps the last 16
-  (seq, reply) pairs; a request that arrives with FLAG_RETRY and a seq in that cache is answered
-  with the cached reply and NOT executed again. Telemetry and Event frames use the device's own
+  (seq, type, reply) entries of requests it executed (never a refusal, never a Kill's Ack); a
+  request that arrives with FLAG_RETRY and a seq and type in that cache is answered with the
+  cached reply and NOT executed again. Telemetry and Event frames use the device's own
   sequence counter (incremented per frame) without FLAG_REPLY.
 - Versioning: the header's version byte is major << 4 | minor. Same major, different minor: both
   sides work; a newer minor may append fields at the end of a payload, and a decoder ignores
@@ -417,7 +420,8 @@ class ArmChallenge:
 class ArmConfirm:
     """Second half of the interlock: ``response`` must equal the bitwise complement of the token
     (token XOR 0xFFFFFFFF) and ``operator_confirmed`` must be 1 (the operator accepted the safety
-    cautions). The device also requires a fresh keepalive and no latched kill."""
+    cautions). The device also requires a host frame within watchdog_s before it and no latched
+    kill."""
 
     response: int = wire("u32", "token XOR 0xFFFFFFFF")
     operator_confirmed: int = wire("u8", "1 = operator confirmed the safety cautions")
@@ -434,7 +438,7 @@ class ExperimentStart:
     current gains. RELAY: the loop's output becomes bias +/- amplitude, switching when the error
     (setpoint - measurement) leaves the band +/- hysteresis. STEP: the loop holds ``setpoint`` until
     ``step_at_s``, then ``setpoint + amplitude``. HOLD: the loop holds ``setpoint``. A threshold of
-    0 means "use the device's kill.* setting"."""
+    0 means "use the device's kill.* setting"; one above that setting is capped at it."""
 
     tag: int = wire("u16", "host-chosen experiment id, echoed in events")
     kind: int = wire("u8", "ExperimentKind", enum_=ExperimentKind)
@@ -454,7 +458,8 @@ class ExperimentStart:
 
 @message(0x31, "host", replies=("ack",))
 class ExperimentStop:
-    """End the running experiment (the device returns to ARMED). Acknowledged in any state."""
+    """End the running experiment if ``tag`` is its tag or 0 (the device returns to ARMED);
+    another tag changes nothing. Acknowledged in any state."""
 
     tag: int = wire("u16", "experiment id")
 
@@ -472,7 +477,7 @@ class ExperimentAdjust:
 @message(0x40, "host", replies=("ack",))
 class Kill:
     """Kill now: outputs to zero in the same tick, latched until KillClear. Accepted in every
-    state, never refused."""
+    state and every major version, never refused."""
 
     reason: int = wire("u8", "KillReason", enum_=KillReason)
     value: float = wire("f32", "the offending value the host saw, or 0")
@@ -485,9 +490,9 @@ class KillClear:
 
 @message(0x50, "host", replies=("ack", "refuse"))
 class TelemetryConfig:
-    """Choose telemetry: rate (0 = off, at most the loop rate), which axes, and which loop level's
-    signals to report for axes that are not running an experiment (the experiment's axis reports
-    the experiment's level)."""
+    """Choose telemetry: rate (0 = off, at most the board's telemetry limit), which axes, and
+    which loop level's signals to report for axes that are not running an experiment (the
+    experiment's axis reports the experiment's level)."""
 
     rate_hz: int = wire("u16", "samples per second of device time", "Hz")
     axis_mask: int = wire("u8", "bit n set = report Axis n")
@@ -512,7 +517,7 @@ class Event:
     time_us: int = wire("u64", "device time", "us")
     kind: int = wire("u8", "EventKind", enum_=EventKind)
     state: int = wire("u8", "device state after the event", enum_=DeviceState)
-    reason: int = wire("u8", "KillReason or FinishReason, per kind, else 0")
+    reason: int = wire("u8", "KillReason, FinishReason or ExperimentKind, per kind, else 0")
     axis: int = wire("u8", "Axis concerned, or 255")
     value: float = wire("f32", "offending value (kill), else 0")
     threshold: float = wire("f32", "limit crossed (kill), else 0")

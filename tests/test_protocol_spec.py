@@ -103,3 +103,27 @@ def test_cli_describe_prints_every_message(capsys):
 def test_describe_module_cli(capsys):
     assert describe.main(["--markdown"]) == 0
     assert capsys.readouterr().out == describe.spec_markdown()
+
+
+def test_the_spec_stands_alone_and_is_complete():
+    # the spec is what a board conforms to; the message table only generates its byte tables
+    assert "single source of truth" not in SPEC
+    heads = re.findall(r"^## (\d+)\. ", SPEC, flags=re.M)
+    assert [int(h) for h in heads] == list(range(1, 19))
+    assert "## 18. Conformance" in SPEC
+    ids = re.findall(r"^\| ([A-Z]+-\d+) \|", SPEC[SPEC.index("## 18."):], flags=re.M)
+    assert len(ids) == len(set(ids)) >= 60
+
+
+def test_every_refuse_code_states_its_detail():
+    for code in RefuseCode:
+        assert "detail" in describe._NOTES[("RefuseCode", code.name)], code
+
+
+def test_reject_vectors_state_what_a_receiver_does():
+    # SPEC.md 6 and 14: a malformed payload is handed up (the device refuses it); the rest drop
+    rejects = json.loads((PROTO / "vectors" / "rejects.json").read_text(encoding="utf-8"))
+    for v in rejects:
+        assert v["outcome"] == ("refuse_malformed" if v["reject"] == "malformed" else "drop")
+    assert {v["reject"] for v in rejects} == {"bad_crc", "bad_cobs", "short", "oversize",
+                                               "malformed"}
