@@ -24,6 +24,7 @@ does not exceed the loop's output limit, the limits lie within the board's ``kil
 from __future__ import annotations
 
 import math
+import textwrap
 import tomllib
 from dataclasses import asdict, dataclass, field as dc_field, replace
 from pathlib import Path
@@ -112,11 +113,11 @@ _DEG = math.pi / 180.0
 #: The plan keys, in the order the example plan and the console show them.
 SCHEMA: tuple[Field, ...] = (
     Field("controller", "stand", str, "pid", choices=CONTROLLERS, per_loop=True,
-          label="controller", help="controller form: pi, pid or pd"),
+          label="controller", help="controller form"),
     Field("rule", "stand", str, "recommended", choices_from=_rule_choices, per_loop=True,
           label="rule / design",
-          help="tuning rule, or 'recommended' (the robustness-constrained design); "
-               "`tetherloop tune --help` lists the rules"),
+          help="tuning rule, or 'recommended' (the robustness-constrained design, with a "
+               "fallback)"),
     Field("ms_target", "stand", float, 1.4, (1.1, 2.5), per_loop=True,
           label="Ms target (robustness)",
           help="largest sensitivity peak the constrained design may reach; lower is more "
@@ -159,9 +160,10 @@ SCHEMA: tuple[Field, ...] = (
     Field("max_experiment_s", "limits", float, 120.0, (1.0, 600.0), "s",
           "longest experiment", "an experiment running longer than this is stopped"),
     Field("axis", "loop", str, None, choices=AXES, required=True, owner="loop", label="axis",
-          help="roll | pitch | yaw | heave"),
+          help="the axis"),
     Field("loop", "loop", str, None, choices=LOOPS, required=True, owner="loop", label="loop",
-          help="rate | angle (roll, pitch, yaw) | heave (the heave axis's height loop)"),
+          help="the loop level: rate and angle on roll, pitch and yaw; rate and heave (height) "
+               "on the heave axis"),
     Field("max_amplitude", "loop", float, None, (1e-6, 1e6), "loop output units",
           "relay amplitude ceiling",
           "largest relay amplitude; at most the loop's output limit on the board (default: "
@@ -493,13 +495,16 @@ def _toml_value(value: Any) -> str:
     return repr(float(value))
 
 
-def _comment(f: Field) -> str:
+def _comment(f: Field) -> list[str]:
+    """The comment lines above a key in the example: its help, then its range or choices."""
     bits = [f.help]
     if f.type is float and f.range:
         bits.append(f"{f.minimum:g} to {f.maximum:g}" + (f" {f.unit}" if f.unit else ""))
-    elif f.type is str and f.choices:
-        bits.append(" | ".join(f.choices))
-    return "; ".join(bits)
+    elif f.type is str:
+        bits.append(" | ".join(f.allowed()))
+    elif f.type is bool:
+        bits.append("true | false")
+    return textwrap.wrap("; ".join(bits), 96, initial_indent="# ", subsequent_indent="#   ")
 
 
 def example_plan() -> str:
@@ -515,13 +520,13 @@ def example_plan() -> str:
     for section in ("stand", "limits"):
         lines.append(headers[section])
         for f in fields(section):
-            lines.append(f"# {_comment(f)}")
+            lines += _comment(f)
             lines.append(f"{f.name} = {_toml_value(f.default)}")
         lines.append("")
     for axis, loop in (("roll", "rate"), ("roll", "angle")):
         lines.append("[[loop]]  # one per loop; tuned in cascade order whatever the file's order")
         for f, value in ((field("axis", "loop"), axis), (field("loop", "loop"), loop)):
-            lines.append(f"# {_comment(f)}")
+            lines += _comment(f)
             lines.append(f"{f.name} = {_toml_value(value)}")
         for f in (x for x in SCHEMA if x.per_loop):
             lines.append(f"# {f.name} = {_toml_value(f.default)}   # overrides [stand]")
