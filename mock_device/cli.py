@@ -18,8 +18,22 @@ import threading
 
 
 
+def _stuck(text: str) -> str:
+    """``--stuck AXIS@S``: the syntax checked while parsing (the axis against the scenario when
+    the board is built, before the link is opened)."""
+    from .faults import parse_stuck
+    try:
+        parse_stuck(text)
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+    return text
+
+
 def register(subparsers) -> argparse.ArgumentParser:
-    """Add the ``mock`` subcommand to an argparse subparsers object."""
+    """Add the ``mock`` subcommand to an argparse subparsers object. Every value is checked while
+    the arguments are parsed (argparse types from ``agent.cli.validate``): a bad one exits 2
+    with a message naming the option, before a pty or socket is opened."""
+    from agent.cli import validate
     p = subparsers.add_parser(
         "mock", help="run a simulated flight board on an invented test stand",
         description="Run a simulated flight board (invented stands) that speaks protocol v1 over "
@@ -30,23 +44,24 @@ def register(subparsers) -> argparse.ArgumentParser:
     link = p.add_mutually_exclusive_group()
     link.add_argument("--pty", action="store_true",
                       help="serve on a pseudo-terminal (default); prints its path first")
-    link.add_argument("--tcp", type=int, metavar="PORT",
+    link.add_argument("--tcp", type=validate.tcp_port, metavar="PORT",
                       help="serve on 127.0.0.1:PORT (open socket://127.0.0.1:PORT); 0 = any")
-    p.add_argument("--speed", default="realtime",
+    p.add_argument("--speed", type=validate.speed, default="realtime",
                    help="'realtime' (default), a factor N (N x real time) or 'max'")
-    p.add_argument("--seed", type=int, default=0, help="seed for noise, tokens, faults")
+    p.add_argument("--seed", type=validate.seed, default=0, help="seed for noise, tokens, faults")
     p.add_argument("--store", metavar="FILE",
                    help="keep persisted settings in this JSON file across restarts (loaded at "
                         "start, written when the host persists)")
-    p.add_argument("--loss", type=float, default=0.0, metavar="P",
+    p.add_argument("--loss", type=validate.probability, default=0.0, metavar="P",
                    help="byte loss probability on the link (both ways)")
-    p.add_argument("--flip", type=float, default=0.0, metavar="P",
+    p.add_argument("--flip", type=validate.probability, default=0.0, metavar="P",
                    help="probability of a bit flip per byte (both ways)")
-    p.add_argument("--latency-ms", type=float, default=0.0, metavar="MS",
+    p.add_argument("--latency-ms", type=validate.milliseconds, default=0.0, metavar="MS",
                    help="added link latency (wall time)")
-    p.add_argument("--drop-at", type=float, default=math.inf, metavar="S",
+    p.add_argument("--drop-at", type=validate.number(0.0, None, "s", allow_inf=True),
+                   default=math.inf, metavar="S",
                    help="the link goes dead at device time S")
-    p.add_argument("--stuck", action="append", default=[], metavar="AXIS@S",
+    p.add_argument("--stuck", action="append", default=[], type=_stuck, metavar="AXIS@S",
                    help="freeze an axis's sensor at device time S (repeatable)")
     p.add_argument("--block", action="append", default=[], metavar="AXIS",
                    help="engage the stand lock on an axis (repeatable)")
@@ -107,7 +122,7 @@ def run(args) -> int:
 
 
 def main(argv=None) -> int:
-    """Stand-alone entry (``python -m mock_device.cli``) until the lead wires ``tetherloop``."""
+    """Stand-alone entry (``python -m mock_device.cli mock ...``)."""
     parser = argparse.ArgumentParser(prog="tetherloop")
     sub = parser.add_subparsers(dest="command", required=True)
     register(sub)

@@ -169,3 +169,158 @@ def test_cautions_need_confirmation_in_scripted_runs(tmp_path, mock_pty):
     assert "--confirm-safe" in r.stderr
     from protocol.messages import DeviceState
     assert h.firmware.state == DeviceState.DISARMED
+
+
+# ---------------------------------------------------------------------------- values checked first
+
+
+@pytest.fixture
+def no_port_opened(monkeypatch):
+    """Every port the host would open goes through pyserial's serial_for_url: record the calls
+    (and refuse them), so a test can show that nothing was connected."""
+    opened = []
+
+    def refuse(url, *args, **kwargs):
+        opened.append(url)
+        raise serial.SerialException(f"test: {url} must not be opened")
+
+    monkeypatch.setattr(serial, "serial_for_url", refuse)
+    return opened
+
+
+@pytest.fixture
+def no_board_started(monkeypatch):
+    """Record (and refuse) every start of the simulated board."""
+    started = []
+
+    def refuse(*args, **kwargs):
+        started.append(args)
+        raise OSError("test: the simulated board must not be started")
+
+    import mock_device.runner
+    from agent import operations
+    monkeypatch.setattr(operations, "start_builtin_board", refuse)
+    monkeypatch.setattr(mock_device.runner, "start_mock", refuse)
+    return started
+
+
+TUNE = ["tune", "--port", "loop://", "--axis", "roll", "--loop", "rate", "--confirm-safe"]
+
+
+@pytest.mark.parametrize("argv, words", [
+    (TUNE + ["--ms", "-1"], ["argument --ms", "-1", "1.1 to 2.5"]),
+    (TUNE + ["--ms", "abc"], ["argument --ms", "'abc' is not a number", "1.1 to 2.5"]),
+    (TUNE + ["--ms", "nan"], ["argument --ms", "'nan'", "1.1 to 2.5"]),
+    (TUNE + ["--baud", "0"], ["argument --baud", "0 is out of range", "baud rate"]),
+    (["autotune", "--port", "loop://", "--baud", "-9600"], ["argument --baud", "-9600"]),
+    (["settings", "--port", "loop://", "--baud", "fast"], ["argument --baud", "'fast'"]),
+    (["ui", "--port", "loop://", "--baud", "0"], ["argument --baud", "0 is out of range"]),
+])
+def test_bad_values_are_refused_before_any_port_is_opened(argv, words, capsys, no_port_opened):
+    from agent import cli
+    code = cli.main(argv)
+    err = capsys.readouterr().err
+    assert code == 2, err
+    for w in words:
+        assert w in err, err
+    assert "Traceback" not in err
+    assert no_port_opened == []
+
+
+@pytest.mark.parametrize("argv, words", [
+    (["demo", "--speed", "abc"], ["argument --speed", "'abc'", "'max'"]),
+    (["demo", "--speed", "0"], ["argument --speed", "'0'", "above 0"]),
+    (["demo", "--speed", "-3"], ["argument --speed", "'-3'", "above 0"]),
+    (["demo", "--seed", "-1"], ["argument --seed", "-1 is out of range"]),
+    (["mock", "--scenario", "gimbal-quad", "--tcp", "99999"],
+     ["argument --tcp", "99999", "0 to 65535"]),
+    (["mock", "--scenario", "gimbal-quad", "--tcp", "-1"], ["argument --tcp", "-1"]),
+    (["mock", "--scenario", "gimbal-quad", "--speed", "0"], ["argument --speed", "above 0"]),
+    (["mock", "--scenario", "gimbal-quad", "--loss", "2"], ["argument --loss", "0 to 1"]),
+    (["mock", "--scenario", "gimbal-quad", "--latency-ms", "-5"], ["argument --latency-ms"]),
+    (["mock", "--scenario", "gimbal-quad", "--stuck", "roll"], ["argument --stuck", "AXIS@"]),
+])
+def test_bad_simulation_values_are_refused_before_the_board_starts(argv, words, capsys,
+                                                                   no_board_started):
+    from agent import cli
+    code = cli.main(argv)
+    err = capsys.readouterr().err
+    assert code == 2, err
+    for w in words:
+        assert w in err, err
+    assert "Traceback" not in err
+    assert no_board_started == []
+
+
+def test_tune_with_a_bad_ms_sends_nothing_to_the_board(tmp_path):
+    # as a user runs it: the board end of the port sees no byte, not even the identify
+    port = FakePort()
+    try:
+        r = run_cli("tune", "--port", port.path, "--axis", "roll", "--loop", "rate", "--ms", "-1",
+                    "--confirm-safe", log_dir=tmp_path, timeout=60)
+    finally:
+        port.close()
+    assert r.returncode == 2
+    assert "argument --ms: -1 is out of range; expected a number from 1.1 to 2.5" in r.stderr
+    assert port.received == b""
+
+
+def test_good_values_are_passed_on():
+    from agent.cli import build_parser
+    args = build_parser().parse_args(["demo", "--speed", "10x", "--seed", "7"])
+    assert (args.speed, args.seed) == ("10", 7)
+    args = build_parser().parse_args(["mock", "--speed", "realtime", "--tcp", "0",
+                                      "--drop-at", "inf"])
+    assert (args.speed, args.tcp, args.drop_at) == ("1", 0, float("inf"))
+    args = build_parser().parse_args(TUNE + ["--ms", "2.5", "--baud", "115200"])
+    assert (args.ms, args.baud) == (2.5, 115200)
+
+
+# ---------------------------------------------------------------------------- exit codes
+
+
+def test_exit_code_of_each_error_branch():
+    from agent import errors
+    from agent.cli import exit_code_for
+    from agent.logbook.format import LogbookVersionError
+    from agent.session import DeviceRefused, SessionError
+    from agent.stand import KillTripped
+    E = errors.ExitCode
+    cases = [(errors.UserError("x"), E.USAGE), (errors.UserError("x", code=E.DECLINED), 1),
+             (errors.PlanError("x"), E.USAGE), (errors.LinkError("x"), E.FAILED),
+             (errors.LinkTimeout("x"), E.FAILED), (errors.DeviceError("x"), E.FAILED),
+             (SessionError("x"), E.FAILED), (errors.WorkflowError("x"), E.FAILED),
+             (errors.LogbookError("x"), E.FAILED), (errors.RecordError("x"), E.FAILED),
+             (LogbookVersionError("x"), E.USAGE), (errors.Cancelled("x"), E.INTERRUPTED),
+             (KillTripped({"reason": "host_operator"}), E.KILLED), (KeyboardInterrupt(), 130)]
+    for exc, code in cases:
+        assert exit_code_for(exc) == int(code), type(exc).__name__
+    assert issubclass(DeviceRefused, SessionError)
+
+
+@pytest.mark.parametrize("error, code", [("LinkError", 3), ("DeviceError", 3),
+                                         ("WorkflowError", 3), ("LogbookError", 3)])
+def test_errors_escaping_a_command_are_printed_and_mapped(monkeypatch, capsys, error, code):
+    from agent import cli, errors, link
+
+    def fail():
+        raise getattr(errors, error)("the test's failure text")
+
+    monkeypatch.setattr(link, "list_ports", fail)
+    assert cli.main(["ports"]) == code
+    err = capsys.readouterr().err
+    assert "the test's failure text" in err and "Traceback" not in err
+
+
+def test_a_command_group_that_fails_to_import_is_an_error_not_a_missing_command(monkeypatch):
+    from agent import cli
+    monkeypatch.setattr(cli, "_GROUPS", cli._GROUPS + ("agent.cli.no_such_group",))
+    with pytest.raises(ModuleNotFoundError, match="no_such_group"):
+        cli.build_parser()
+
+
+def test_help_and_version_return_zero(capsys):
+    from agent import cli
+    assert cli.main(["--version"]) == 0
+    assert cli.main(["plan", "--help"]) == 0
+    assert "--example" in capsys.readouterr().out

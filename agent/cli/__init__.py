@@ -2,6 +2,12 @@
 
 Each subcommand group lives in its own module exposing ``register(subparsers)``; the handler it
 sets as ``func`` returns the process exit code. The CLI computes nothing itself.
+
+Exit codes (``agent.errors.ExitCode``, the README's table): a handler returns its own; an error
+that escapes a handler is printed without a traceback and mapped by :func:`exit_code_for` (a
+UserError carries its code; a kill is 5; a gentle stop 130; any other TetherloopError 3). A bad
+command-line value is refused by argparse while parsing (``agent.cli.validate``): exit 2, before
+any port is opened.
 """
 
 from __future__ import annotations
@@ -12,7 +18,8 @@ import sys
 from agent import __version__
 
 
-from agent.errors import UserError  # noqa: E402  (re-exported: agent.cli.UserError)
+from agent.errors import (Cancelled, ExitCode, TetherloopError,  # noqa: E402
+                          UserError)  # UserError re-exported: agent.cli.UserError
 
 
 def _cmd_version(args) -> int:
@@ -56,33 +63,56 @@ def build_parser() -> argparse.ArgumentParser:
                    "DIR (the checked-in copy is protocol/c/generated)")
     p.set_defaults(func=_cmd_protocol)
     for modname in _GROUPS:
-        try:
-            mod = __import__(modname, fromlist=["register"])
-        except ModuleNotFoundError as exc:
-            if exc.name == modname:
-                continue  # group not built yet
-            raise
-        mod.register(sub)
+        __import__(modname, fromlist=["register"]).register(sub)
     return parser
 
 
-_GROUPS = ("mock_device.cli", "agent.cli.stand", "agent.cli.logbook_cmds", "agent.cli.ui_cmd")
+_GROUPS = ("mock_device.cli", "agent.cli.stand", "agent.cli.logbook_cmds", "agent.cli.ui_cmd",
+           "agent.cli.board_cmds",
+           "agent.cli.plan_cmd")
+
+
+def exit_code_for(exc: BaseException) -> int:
+    """The exit code of an error that ended a command (the README's table).
+
+    A UserError (and so a PlanError) carries its own code (2 unless it says otherwise); a kill
+    (``agent.stand.KillTripped``) is 5; the operator's gentle stop (Cancelled) and Ctrl-C are 130;
+    a log of an unknown format version is 2 (a newer tool reads it); every other TetherloopError
+    (link, board, workflow, logbook, record) is 3.
+    """
+    if isinstance(exc, UserError):
+        return exc.code
+    if isinstance(exc, KeyboardInterrupt | Cancelled):
+        return int(ExitCode.INTERRUPTED)
+    # the modules defining these were loaded if one of them was raised
+    stand = sys.modules.get("agent.stand")
+    if stand is not None and isinstance(exc, stand.KillTripped):
+        return int(ExitCode.KILLED)
+    fmt = sys.modules.get("agent.logbook.format")
+    if fmt is not None and isinstance(exc, fmt.LogbookVersionError):
+        return int(ExitCode.USAGE)
+    return int(ExitCode.FAILED)
 
 
 def main(argv: list[str] | None = None) -> int:
     parser = build_parser()
-    args = parser.parse_args(argv)
+    try:
+        args = parser.parse_args(argv)
+    except SystemExit as exc:  # --help, --version, or a bad value (argparse printed why)
+        if exc.code is None:
+            return int(ExitCode.OK)
+        return exc.code if isinstance(exc.code, int) else int(ExitCode.USAGE)
     if not getattr(args, "func", None):
         parser.print_help()
-        return 2
+        return int(ExitCode.USAGE)
     try:
         return int(args.func(args) or 0)
-    except UserError as exc:
+    except TetherloopError as exc:
         print(f"tetherloop: error: {exc}", file=sys.stderr)
-        return exc.code
+        return exit_code_for(exc)
     except KeyboardInterrupt:
         print("tetherloop: interrupted", file=sys.stderr)
-        return 130
+        return int(ExitCode.INTERRUPTED)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -43,6 +43,7 @@ def cmd_ui(args) -> int:
 
 
 def register(subparsers) -> None:
+    from . import validate
     p = subparsers.add_parser(
         "ui", help="the stand console: connect, watch, plan, run, results, logbook",
         description="Full-screen console for the stand. Ctrl+K (or F12) kills on every tab; "
@@ -55,8 +56,8 @@ def register(subparsers) -> None:
                    "or the per-user data folder)")
     p.add_argument("--scenario", default=DEFAULT_SCENARIO,
                    help=f"simulated stand for --demo (default {DEFAULT_SCENARIO})")
-    p.add_argument("--speed", default="5",
+    p.add_argument("--speed", type=validate.speed, default="5",
                    help="simulation clock for --demo: times real time, or max (default 5)")
-    p.add_argument("--seed", type=int, default=1, help="simulation seed for --demo")
-    p.add_argument("--baud", type=int, default=921600, help="baud rate (default 921600)")
+    p.add_argument("--seed", type=validate.seed, default=1, help="simulation seed for --demo")
+    p.add_argument("--baud", type=validate.baud, default=921600, help="baud rate (default 921600)")
     p.set_defaults(func=cmd_ui)

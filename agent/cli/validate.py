@@ -21,13 +21,14 @@ from typing import Callable
 BAUD_RANGE = (50, 20_000_000)
 
 
-def _bad(text: str, expected: str) -> argparse.ArgumentTypeError:
-    return argparse.ArgumentTypeError(f"{text!r} is not valid; expected {expected}")
+def _bad(text: str, kind: str, expected: str) -> argparse.ArgumentTypeError:
+    return argparse.ArgumentTypeError(f"{text!r} is not {kind}; expected {expected}")
 
 
-def integer(lo: int | None = None, hi: int | None = None,
-            what: str = "a whole number") -> Callable[[str], int]:
-    """A ``type=`` accepting a whole number in ``[lo, hi]`` (either end may be open)."""
+def integer(lo: int | None = None, hi: int | None = None, what: str = "a whole number",
+            note: str = "") -> Callable[[str], int]:
+    """A ``type=`` accepting a whole number in ``[lo, hi]`` (either end may be open); ``what``
+    names the kind of number and ``note`` adds a hint to the message."""
     if lo is not None and hi is not None:
         expected = f"{what} from {lo} to {hi}"
     elif lo is not None:
@@ -36,12 +37,14 @@ def integer(lo: int | None = None, hi: int | None = None,
         expected = f"{what} of at most {hi}"
     else:
         expected = what
+    if note:
+        expected += f" ({note})"
 
     def parse(text: str) -> int:
         try:
             value = int(str(text).strip(), 10)
         except ValueError:
-            raise _bad(text, expected) from None
+            raise _bad(text, "a whole number", expected) from None
         if (lo is not None and value < lo) or (hi is not None and value > hi):
             raise argparse.ArgumentTypeError(f"{value} is out of range; expected {expected}")
         return value
@@ -72,9 +75,9 @@ def number(lo: float | None = None, hi: float | None = None, unit: str = "",
         try:
             value = float(str(text).strip())
         except ValueError:
-            raise _bad(text, expected) from None
+            raise _bad(text, "a number", expected) from None
         if math.isnan(value) or (math.isinf(value) and not (allow_inf and value > 0)):
-            raise _bad(text, expected)
+            raise _bad(text, "a finite number", expected)
         low_fails = lo is not None and (value <= lo if lo_open else value < lo)
         if low_fails or (hi is not None and value > hi):
             raise argparse.ArgumentTypeError(f"{value:g} is out of range; expected {expected}")
@@ -84,13 +87,13 @@ def number(lo: float | None = None, hi: float | None = None, unit: str = "",
     return parse
 
 
-baud = integer(*BAUD_RANGE, what="a baud rate (bits per second, e.g. 115200 or 921600)")
+baud = integer(*BAUD_RANGE, what="a baud rate", note="bits per second, e.g. 115200 or 921600")
 baud.__doc__ = "A baud rate: a whole number of bits per second in BAUD_RANGE."
 
-tcp_port = integer(0, 65535, what="a TCP port number (0: any free port)")
+tcp_port = integer(0, 65535, what="a TCP port number", note="0: any free port")
 tcp_port.__doc__ = "A TCP port number, 0 (any free port) to 65535."
 
-seed = integer(0, 2**32 - 1, what="a seed (a whole number)")
+seed = integer(0, 2**32 - 1, what="a whole number")
 seed.__doc__ = "A simulation seed: a whole number from 0 to 2**32 - 1."
 
 probability = number(0.0, 1.0, "(a probability)")
