@@ -4,9 +4,18 @@ Settings are discovered, never assumed: the host asks the device to describe eve
 settings table (``SettingDescribe``) and finds gains by their documented dotted names
 ("roll.rate.kp"). Values are checked against the device's own bounds before anything is sent.
 
+Settings the host records are the board's: ``values`` holds only what the board returned — a
+read, or the value a write's reply echoes (SettingValue: the value stored) — and a setting whose
+value could not be confirmed (a write whose reply and read-back were both lost) is taken out of
+``values`` and put in ``unknown`` until a read succeeds. A write whose reply was lost is read
+back before anything is recorded (the board may have executed it); ``write_many`` is
+all-or-nothing: on a failure part-way it restores the values written so far, reads every one
+back and raises an error that says what the board now holds.
+
 Threads: the commands run on the caller's thread and block until the board answers (each is one
-``Link.request``, with the link's time-out and retries; a resend is never executed twice by the
-board). The session also listens to the link: ``state`` follows every Ack, Telemetry and Event,
+``Link.request``, with the link's retries and back-off; a resend is never executed twice by the
+board). Connecting turns the board's telemetry off first, so that the many small requests of
+settings discovery do not share a lossy link with a stream they do not need. The session also listens to the link: ``state`` follows every Ack, Telemetry and Event,
 so it is written from the reader thread too; it is a hint for displays and guards, the board's
 own state machine is what decides. Errors: ``SessionError`` for what the host refuses or cannot
 understand, ``DeviceRefused`` (a SessionError) for a refusal by the board, ``LinkError`` /
@@ -15,6 +24,8 @@ understand, ``DeviceRefused`` (a SessionError) for a refusal by the board, ``Lin
 
 from __future__ import annotations
 
+import math
+import struct
 import threading
 from dataclasses import dataclass
 from typing import Any
@@ -26,6 +37,12 @@ from protocol.messages import (Axis, DeviceState, Loop, PROTOCOL_MAJOR, PROTOCOL
 from . import __version__
 from .errors import DeviceError
 from .link import ForeignVersion, Link, LinkError
+from .replies import describe_kill_event
+
+HELLO_TIMEOUT_S = 0.3  # a board may still be booting: Hello has patience of its own ...
+HELLO_RETRIES = 14
+HELLO_SILENT_S = 2.0  # ... but a port where not one byte arrives for this long is given up
+DISCOVERY_RETRIES = 14  # settings-table entries are the largest replies: more tries
 
 
 class SessionError(DeviceError):
@@ -35,17 +52,44 @@ class SessionError(DeviceError):
 class DeviceRefused(SessionError):
     """The board refused a request (nothing was changed). ``code`` is the RefuseCode number
     (kept as an int: a newer board may send a code this host does not know), ``refuse`` the
-    whole Refuse message; the text names the request, the code and the board's reason."""
+    whole Refuse message; the text names the request, the code and the board's reason, and
+    ``context`` when given (why a kill is latched, what a set of writes left on the board).
+    ``board`` is set on the error of a failed ``write_many`` (see :class:`BoardValues`)."""
 
-    def __init__(self, request: str, refuse: m.Refuse):
+    def __init__(self, request: str, refuse: m.Refuse, context: str = ""):
         try:
             code = RefuseCode(refuse.code).name
         except ValueError:
             code = f"code {refuse.code}"
         super().__init__(f"the board refused {request}: {code}"
-                         + (f" — {refuse.text}" if refuse.text else ""))
+                         + (f" — {refuse.text}" if refuse.text else "")
+                         + (f" ({context})" if context else ""))
         self.refuse = refuse
         self.code = refuse.code
+        self.board: BoardValues | None = None
+
+
+@dataclass(frozen=True)
+class BoardValues:
+    """What the board holds after a failed set of writes, as read back: ``held`` by name,
+    ``unknown`` the names that could not be read, ``restored`` True when every value is back
+    to what it was before the set."""
+
+    held: dict[str, float]
+    unknown: tuple[str, ...]
+    restored: bool
+
+    def describe(self) -> str:
+        """"roll.rate.kp=0.3, ...; unknown (could not be read back): roll.rate.ki"."""
+        text = ", ".join(f"{k}={v:.6g}" for k, v in self.held.items()) or "nothing readable"
+        if self.unknown:
+            text += "; unknown (could not be read back): " + ", ".join(self.unknown)
+        return text
+
+
+def f32(value: float) -> float:
+    """``value`` as the board stores it (IEEE binary32)."""
+    return struct.unpack("<f", struct.pack("<f", float(value)))[0]
 
 
 @dataclass(frozen=True)
@@ -103,13 +147,15 @@ def loop_name(loop: int) -> str:
 class Session:
     """High-level commands to one board over a Link (see the module docstring for threads and
     errors). ``info``, ``settings`` and ``values`` are filled by ``connect``; ``values`` holds
-    the last value read from or written to the board, by setting name."""
+    the last value the board returned for each setting (read back or echoed by a write),
+    ``unknown`` the settings whose value on the board could not be confirmed."""
 
     def __init__(self, link: Link):
         self.link = link
         self.info: DeviceInfo | None = None
         self.settings: dict[str, Setting] = {}
         self.values: dict[str, float] = {}
+        self.unknown: set[str] = set()
         self.state: DeviceState = DeviceState.DISARMED
         self._tag = 0
         self._lock = threading.Lock()
@@ -125,13 +171,19 @@ class Session:
         if ev.state in DeviceState._value2member_map_:
             self.state = DeviceState(ev.state)
 
-    def _ask(self, msg, what: str):
-        """One request; a Refuse becomes DeviceRefused (``what`` names the request in its
-        text), an Ack updates ``state``; any other reply is returned."""
-        reply = self.link.request(msg)
+    def _ask(self, msg, what: str, **kw):
+        """One request (``kw`` go to ``Link.request``); a Refuse becomes DeviceRefused
+        (``what`` names the request in its text; a latched kill also says which kill, when
+        the board reported it), an Ack updates ``state``; any other reply is returned."""
+        reply = self.link.request(msg, **kw)
         if isinstance(reply, m.Refuse):
-            raise DeviceRefused(what, reply)
-        if isinstance(reply, m.Ack):
+            context = ""
+            if reply.code == RefuseCode.KILL_LATCHED:
+                self.state = DeviceState.KILLED
+                if self.link.last_kill is not None:
+                    context = "the board killed: " + describe_kill_event(self.link.last_kill)
+            raise DeviceRefused(what, reply, context)
+        if isinstance(reply, m.Ack) and reply.state in DeviceState._value2member_map_:
             self.state = DeviceState(reply.state)
         return reply
 
@@ -139,8 +191,11 @@ class Session:
     def connect(self) -> DeviceInfo:
         """Identify the board, check the protocol version and discover its settings table.
 
-        Hello is asked with its own patience (4 tries of 0.5 s: a board may still be booting);
-        then every setting is described and read (see ``discover_settings``).
+        Hello is asked with its own patience (a board may still be booting; a port where
+        nothing at all arrives is given up after ``HELLO_SILENT_S``); then the board's telemetry
+        is turned off (it would share a lossy link with the discovery's requests; every
+        experiment sets the rate it needs) and every setting is described and read (see
+        ``discover_settings``).
 
         Returns
         -------
@@ -159,9 +214,10 @@ class Session:
         """
         try:
             reply = self.link.request(m.Hello(host_name=f"tetherloop {__version__}"),
-                                      timeout_s=0.5, retries=3)
+                                      timeout_s=HELLO_TIMEOUT_S, retries=HELLO_RETRIES,
+                                      silent_s=HELLO_SILENT_S)
         except LinkError as exc:
-            raise SessionError(f"nothing answered on {self.link.port_name}: {exc}") from None
+            raise SessionError(str(exc)) from None
         if isinstance(reply, ForeignVersion):
             raise SessionError(
                 f"the board answers in protocol {reply.major}.{reply.minor}; this tetherloop "
@@ -190,21 +246,26 @@ class Session:
         self.info = DeviceInfo(reply.device_id, reply.firmware_version,
                                f"{reply.protocol_major}.{reply.protocol_minor}",
                                reply.loop_rate_hz, reply.capabilities, axes)
+        self._ask(m.TelemetryConfig(rate_hz=0, axis_mask=0, loop=0), "telemetry off",
+                  retries=DISCOVERY_RETRIES)
         self.discover_settings(reply.setting_count)
         return self.info
 
     def discover_settings(self, count: int) -> None:
         """Describe the entries 0 .. count-1 of the board's table, then read each value into
-        ``values``. ``settings`` is replaced only when every description arrived. Raises
-        DeviceRefused or LinkError (one request per entry, twice)."""
+        ``values``. ``settings`` is replaced only when every description arrived. Each request
+        has ``DISCOVERY_RETRIES`` resends. Raises DeviceRefused or LinkError."""
         settings: dict[str, Setting] = {}
         for index in range(count):
-            info = self._ask(m.SettingDescribe(index=index), f"describe setting #{index}")
+            info = self._ask(m.SettingDescribe(index=index), f"describe setting #{index}",
+                             retries=DISCOVERY_RETRIES)
             s = Setting(info.index, info.setting_id, info.name, info.type, info.unit,
                         info.minimum, info.maximum, info.default, info.flags)
             settings[s.name] = s
         self.settings = settings
-        self.values = {name: self.read(name) for name in settings}
+        self.values, self.unknown = {}, set()
+        for name in settings:
+            self.read(name, retries=DISCOVERY_RETRIES)
 
     # ------------------------------------------------------------------ settings
     def setting(self, name: str) -> Setting:
@@ -214,29 +275,60 @@ class Session:
         except KeyError:
             raise SessionError(f"the board has no setting named {name!r}") from None
 
-    def read(self, name: str) -> float:
-        """Read one setting from the board (and into ``values``).
+    def read(self, name: str, retries: int | None = None) -> float:
+        """Read one setting from the board into ``values`` (it leaves ``unknown``).
 
         Raises
         ------
         SessionError
             No such setting.
         DeviceRefused, LinkError
-            The board refused, or the link failed.
+            The board refused, or the link failed (the record is left as it was).
         """
         s = self.setting(name)
-        reply = self._ask(m.SettingRead(setting_id=s.setting_id), f"read {name}")
+        reply = self._ask(m.SettingRead(setting_id=s.setting_id), f"read {name}",
+                          retries=retries)
         self.values[name] = reply.value
+        self.unknown.discard(name)
         return reply.value
 
+    def _read_back(self, name: str) -> float | None:
+        """Read ``name`` with discovery's patience; None (and the name moved from ``values``
+        to ``unknown``) when it cannot be read."""
+        try:
+            return self.read(name, retries=DISCOVERY_RETRIES)
+        except (SessionError, LinkError):
+            self.values.pop(name, None)
+            self.unknown.add(name)
+            return None
+
+    def reread_unknown(self) -> None:
+        """Read again every setting whose value is unknown (those that still fail stay so)."""
+        for name in sorted(self.unknown):
+            self._read_back(name)
+
+    @staticmethod
+    def _holds(s: Setting, held: float, value: float) -> bool:
+        """Whether the value read back is the one written (as binary32; an integral, boolean
+        or choice setting may have been rounded by the board)."""
+        if math.isclose(held, f32(value), rel_tol=1e-6, abs_tol=1e-12):
+            return True
+        return s.type != m.SettingType.FLOAT and held == f32(round(value))
+
     def write(self, name: str, value: float) -> float:
-        """Write one setting after checking it against the board's bounds.
+        """Write one setting after checking it against the board's bounds, and record what the
+        board holds afterwards.
+
+        The reply (SettingValue) echoes the value stored, which is recorded. When the reply is
+        lost after every retry the board may or may not have executed the write, so the
+        setting is read back first: the new value there means it was done; the old value
+        means it was not, and the write is sent once more; no answer to the read either
+        leaves the setting ``unknown``.
 
         Returns
         -------
         float
-            The value the board stored (its SettingValue reply: float32, perhaps rounded), also
-            kept in ``values``.
+            The value the board stored (float32, perhaps rounded), also kept in ``values``.
 
         Raises
         ------
@@ -245,23 +337,109 @@ class Session:
         DeviceRefused
             The board refused (read-only, busy, wrong state, ...): nothing was changed.
         LinkError, LinkTimeout
-            The link failed; a write whose reply was lost may or may not have happened, so read
-            it back before recording it.
+            The link failed; the text says what the board holds (read back) or that its value
+            is unknown.
         """
         s = self.setting(name)
         s.check(value)
-        reply = self._ask(m.SettingWrite(setting_id=s.setting_id, value=float(value)),
-                          f"write {name} = {value:g}")
-        self.values[name] = reply.value
-        return reply.value
+        what = f"write {name} = {value:g}"
+        for attempt in range(2):
+            try:
+                reply = self._ask(m.SettingWrite(setting_id=s.setting_id, value=float(value)),
+                                  what)
+            except LinkError as exc:
+                held = self._read_back(name)
+                if held is None:
+                    raise LinkError(
+                        f"{what}: {exc}. Its value could not be read back either, so what the "
+                        "board holds is unknown (left out of the host's record until it is "
+                        "read again)") from exc
+                if self._holds(s, held, value):
+                    return held  # done on the board; only its reply was lost
+                if attempt:
+                    raise LinkError(f"{what}: {exc}. Read back: the board still holds "
+                                    f"{name} = {held:.6g}, unchanged") from exc
+                continue  # the read-back proved it was not done: sending it again is safe
+            self.values[name] = reply.value
+            self.unknown.discard(name)
+            return reply.value
+        raise AssertionError("unreachable")  # pragma: no cover
 
     def write_many(self, values: dict[str, float]) -> dict[str, float]:
-        """Check every name and value first and write only if all are good; then write them in
-        order (see ``write``). A refusal or link error part-way raises with the earlier values
-        written: ``values`` says which. Returns the stored values by name."""
+        """Write a set of settings, all or nothing.
+
+        Every name and value is checked first and nothing is sent unless all are good; a
+        setting whose value is not known is read first (so it can be restored). On a failure
+        part-way (a refusal or a link error) the settings written so far, and the one that
+        failed, are written back to their previous values, every setting of the set is read
+        back, and the error says what the board now holds.
+
+        Returns
+        -------
+        dict
+            The stored values by name (as the board returned them).
+
+        Raises
+        ------
+        SessionError
+            A name or value refused by the host: nothing was sent.
+        DeviceRefused, LinkError
+            A write failed; the text says what the board holds now and ``board`` (a
+            :class:`BoardValues`) gives the values read back and the names still unknown.
+        """
         for name, value in values.items():
             self.setting(name).check(value)
-        return {name: self.write(name, value) for name, value in values.items()}
+        before = {}
+        for name in values:
+            if name not in self.values:
+                self.read(name)  # raises before anything was written
+            before[name] = self.values[name]
+        written: dict[str, float] = {}
+        current = ""
+        try:
+            for name, value in values.items():
+                current = name
+                written[name] = self.write(name, value)
+        except (SessionError, LinkError) as exc:
+            board = self._undo([*written, current], before)
+            raise self._set_failed(exc, current, list(written), board) from exc
+        return written
+
+    def _undo(self, touched: list[str], before: dict[str, float]) -> BoardValues:
+        """Write the previous values of ``touched`` back (latest first), then read every
+        setting of the set again."""
+        for name in reversed(touched):
+            if name in self.unknown or self.values.get(name) != before[name]:
+                try:
+                    self.write(name, before[name])
+                except (SessionError, LinkError):
+                    pass  # the read-back below says what the board holds
+        for name in before:
+            self._read_back(name)
+        held = {n: self.values[n] for n in before if n in self.values}
+        unknown = tuple(n for n in before if n in self.unknown)
+        restored = not unknown and all(held[n] == before[n] for n in before)
+        return BoardValues(held, unknown, restored)
+
+    @staticmethod
+    def _set_failed(exc: Exception, name: str, earlier: list[str], board: BoardValues):
+        """The error of a failed set of writes: the cause and what the board holds now."""
+        if board.restored:
+            tail = ("the settings written before it were restored and read back; the board "
+                    if earlier else "read back, the board ")
+            tail += f"holds its previous values: {board.describe()}"
+        else:
+            tail = (f"the set could not be restored: the board now holds {board.describe()}. "
+                    "Read the settings again (`tetherloop settings`) and set them before "
+                    "arming")
+        if isinstance(exc, DeviceRefused):
+            err = DeviceRefused(f"write {name}", exc.refuse, tail)
+        elif isinstance(exc, LinkError):
+            err = LinkError(f"writing {name} failed: {exc}. Then {tail}")
+        else:
+            err = SessionError(f"writing {name} failed: {exc}. Then {tail}")
+        err.board = board
+        return err
 
     def persist(self) -> None:
         """Ask the board to store its settings table in non-volatile memory (DISARMED only).

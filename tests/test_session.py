@@ -9,7 +9,7 @@ import re
 import pytest
 
 from agent.link import Link
-from agent.session import DeviceRefused, Session, SessionError
+from agent.session import HELLO_RETRIES, DeviceRefused, Session, SessionError
 from mock_device.runner import start_mock
 from protocol import codec
 from protocol import messages as m
@@ -60,7 +60,9 @@ def test_connect_identifies_the_board_and_discovers_its_settings(board):
 
 def scripted(hello: bytes | None = None, **by_type):
     """A respond() for FakePeer: Hello gets ``hello`` (bytes, or a HelloReply), other types
-    the reply message given by class name; everything else is left unanswered."""
+    the reply message given by class name (TelemetryConfig is acknowledged unless given);
+    everything else is left unanswered."""
+    by_type.setdefault("TelemetryConfig", ack)
 
     def respond(frame):
         msg = frame.msg
@@ -113,7 +115,10 @@ def test_connect_maps_the_axes_and_skips_unknown_ones(peer_session):
     (lambda f: reply(f, m.Refuse(refused_type=1, code=int(RefuseCode.VERSION), detail=0,
                                  text="device speaks 3.0")),
      r"another major version of the protocol \(device speaks 3\.0\)"),
-    (lambda f: ack(f), r"unexpected answer to identify: Ack"),
+    # an Ack is no answer to Hello (the message table lists only HelloReply): ignored, and
+    # named when the request gives up
+    (lambda f: ack(f), r"no reply to Hello from fake-peer after 3 tries.*: 3 replies with "
+                       r"its sequence number were of another kind \(Ack of 0x01\)"),
 ])
 def test_connect_refuses_a_board_of_another_protocol_major(peer_session, hello, text):
     session, _ = peer_session(scripted(hello))
@@ -132,9 +137,12 @@ def test_connect_turns_another_refusal_into_device_refused(peer_session):
 
 def test_connect_to_a_silent_port_says_nothing_answered(peer_session):
     session, peer = peer_session(scripted(None))
-    with pytest.raises(SessionError, match="nothing answered on fake-peer: no reply"):
+    with pytest.raises(SessionError, match="no reply to Hello from fake-peer "
+                       ".*nothing arrived at all: is the board powered"):
         session.connect()
-    assert len(peer.of_type(m.Hello)) == 4  # the first try and three resends
+    # a silent port is given up after HELLO_SILENT_S, before every resend was spent
+    hellos = peer.of_type(m.Hello)
+    assert 2 <= len(hellos) < HELLO_RETRIES + 1 and len({f.seq for f in hellos}) == 1
 
 
 # ---------------------------------------------------------------- settings
@@ -253,8 +261,9 @@ def test_an_experiment_runs_and_the_board_refuses_writes_meanwhile(board):
     with pytest.raises(DeviceRefused, match="BUSY") as err:
         session.write("roll.rate.kp", 0.3)
     assert err.value.code == RefuseCode.BUSY
-    with pytest.raises(DeviceRefused, match="relay adjustment: UNSUPPORTED"):
+    with pytest.raises(DeviceRefused, match="relay adjustment: BAD_PARAMETER") as err:
         session.adjust(tag, 0.1, 0.0, 0.0)  # a hold is not a relay
+    assert err.value.code == RefuseCode.BAD_PARAMETER
     session.stop_experiment(tag)
     assert fw.state == DeviceState.ARMED and session.state == DeviceState.ARMED
     assert session.start_experiment(**HOLD, tag=77) == 77
