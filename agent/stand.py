@@ -339,6 +339,8 @@ class Stand:
             pass
         if self.log is not None:
             try:
+                if self.link.lost_reason is None:
+                    self.session.reread_unknown()  # settings_after: read-back values only
                 self.log.update_manifest(settings_after=dict(self.session.values),
                                          link_stats=self.link.stats.as_dict())
                 self.log.close(outcome)
