@@ -15,7 +15,11 @@ second-order factor with real or complex poles:
 
 The richer families start from the fitted simpler ones they extend (``SEEDED_FROM``) and are
 only fitted when the family they extend does not already reproduce the record down to the
-measurement noise.
+measurement noise. Each integrating family is also the limit of a stable one with one more lag
+(``K / s = lim K T / (T s + 1)``, ``T`` far beyond the record; ``STABLE_LIMIT``): the stable
+family can reproduce whatever its limit does, is searched again from the integrating fit when
+its own search ended above it, and must fit clearly better to be chosen over it, since a
+record shorter than the slow lag shows no static gain.
 
 Fitting (output error, whole waveform)
 --------------------------------------
@@ -61,10 +65,14 @@ __all__ = ["MODEL_KINDS", "Model", "fit_model", "fit_models", "select_model"]
 MODEL_KINDS = ("fopdt", "sopdt", "ipdt", "topdt", "isopdt", "ztopdt", "izsopdt")
 INTEGRATING_KINDS = ("ipdt", "isopdt", "izsopdt")
 N_PARAMS = {"fopdt": 3, "sopdt": 4, "ipdt": 3, "topdt": 5, "isopdt": 4, "ztopdt": 6, "izsopdt": 5}
-# richer family -> the simpler family it contains (selection asks the richer one to earn its
-# extra parameters against it)
-NESTED_IN = {"sopdt": "fopdt", "topdt": "sopdt", "isopdt": "ipdt", "ztopdt": "topdt",
-             "izsopdt": "isopdt"}
+# integrating family -> the stable family that contains it as the limit of a slow lag:
+# K / s = lim K T / (T s + 1) for T -> infinity, so over any record much shorter than T a stable
+# family with one more lag reproduces everything its integrating limit does
+STABLE_LIMIT = {"ipdt": "sopdt", "isopdt": "topdt", "izsopdt": "ztopdt"}
+# richer family -> the simpler families it contains, by an extra factor or as a limit
+# (selection asks the richer one to earn its extra parameters against each of them)
+NESTED_IN = {"sopdt": ("fopdt", "ipdt"), "topdt": ("sopdt", "isopdt"), "isopdt": ("ipdt",),
+             "ztopdt": ("topdt", "izsopdt"), "izsopdt": ("isopdt",)}
 # richer family -> the fitted family its starting points come from
 SEEDED_FROM = {"topdt": ("sopdt",), "isopdt": ("ipdt",), "ztopdt": ("topdt",),
                "izsopdt": ("isopdt", "ztopdt")}
@@ -270,9 +278,15 @@ class _Fitter:
         nz = np.flatnonzero(dm.a)
         a = dm.a[: nz[-1] + 1]  # trailing zeros dropped
         cols = [resp, self.ones]
-        base = signal.lfilter([1.0], a, self.imp)
-        for j in range(len(a) - 1):
-            cols.append(np.concatenate([np.zeros(j), base[: len(base) - j]])[::q])
+        # free response of the model: impulse responses of (1 - z^-1)^j / a(z), j < order.
+        # They span the same space as impulses at samples 0 .. order-1 (any initial state),
+        # but stay far from collinear when the poles sit close to z = 1 (time constants of
+        # many ticks), where one-sample shifts of one impulse response differ only in their
+        # j-th differences and the normal equations below would lose them to the rank cut.
+        diff = np.array([1.0])
+        for _ in range(len(a) - 1):
+            cols.append(signal.lfilter(diff, a, self.imp)[::q])
+            diff = np.convolve(diff, [1.0, -1.0])
         if self.drift:
             var = [cols[0]] + cols[2:]  # gain column and free modes
             V = np.column_stack(var)
@@ -328,6 +342,20 @@ def _seed_starts(kind: str, seed: Model, period_s: float) -> list[np.ndarray]:
     p = seed.params
     P = period_s
     out = []
+    if STABLE_LIMIT.get(seed.kind) == kind:
+        # from the integrating family this one contains as a limit: the integrator becomes a
+        # lag much slower than the oscillation (its gain is solved linearly)
+        T, L = p["T"], p["L"]
+        for slow in (4.0 * P, 40.0 * P):
+            if kind == "sopdt":  # poles T and slow as T^2 s^2 + 2 zeta T s + 1
+                Tq = np.sqrt(T * slow)
+                out.append(np.array([np.log(Tq), np.log((T + slow) / (2 * Tq)), L / P]))
+            elif kind == "topdt":
+                out.append(np.array([np.log(T), np.log(p["zeta"]), np.log(slow), L / P]))
+            else:  # ztopdt from izsopdt
+                out.append(np.array([np.log(T), np.log(p["zeta"]), np.log(slow), p["Tz"],
+                                     L / P]))
+        return out
     if kind == "topdt":  # from sopdt: extra lag T3 = r*T taken out of the dead time
         T, z, L = p["T"], p["zeta"], p["L"]
         for r in (0.05, 0.25, 0.7):
@@ -432,7 +460,8 @@ def fit_model(kind: str, dt: float, u: np.ndarray, y: np.ndarray, period_s: floa
     seeds = seed if isinstance(seed, tuple) else (seed,) if seed is not None else ()
     seeded = []
     for sd in seeds:
-        if sd is not None and sd.kind in SEEDED_FROM.get(kind, ()):
+        if sd is not None and (sd.kind in SEEDED_FROM.get(kind, ())
+                               or STABLE_LIMIT.get(sd.kind) == kind):
             seeded += _seed_starts(kind, sd, period_s)
     gridded = []
     if not seeded or kind == "izsopdt":  # no seeds, or a family whose seeds can all mislead
@@ -535,21 +564,40 @@ def fit_models(dt: float, u: np.ndarray, y: np.ndarray, period_s: float, amplitu
     def reaches_noise(m: Model) -> bool:
         return misfit(m) <= at_noise
 
+    def contained(k: str) -> set[str]:  # every family k contains, directly or through others
+        out: set[str] = set()
+        todo = list(NESTED_IN.get(k, ()))
+        while todo:
+            c = todo.pop()
+            if c not in out:
+                out.add(c)
+                todo += NESTED_IN.get(c, ())
+        return out
+
     def fit_all(variant: str, res: dict[str, Model], only=None) -> dict[str, Model]:
         for k in order:
             if k in res or (only is not None and k not in only):
                 continue
-            base = k
-            while base in NESTED_IN:  # a family it extends already fits down to the noise:
-                base = NESTED_IN[base]  # select_model could never prefer it, skip the fit
-                if base in res and reaches_noise(res[base]):
-                    break
-            else:
-                base = ""
-            if base:
+            # a family it contains already fits down to the noise: select_model could never
+            # prefer it, skip the fit
+            if any(c in res and reaches_noise(res[c]) for c in contained(k)):
                 continue
             res[k] = fit_model(k, dt, u, y, period_s, amplitude, variant=variant, u_ref=u_ref,
                                seed=tuple(res[s] for s in SEEDED_FROM.get(k, ()) if s in res))
+        if only is None:
+            # a family never fits worse than a family it contains (as an extra factor or as a
+            # limit); when its search ended above one (a local minimum: the stable families'
+            # starting points never look at a lag far slower than the oscillation, where their
+            # integrating limits sit), it is searched again from that family's fit and the
+            # better fit kept. Contained families first, so that a repair carries on upwards.
+            for k in sorted(res, key=lambda k: len(contained(k))):
+                for c in NESTED_IN.get(k, ()):
+                    seedable = c in SEEDED_FROM.get(k, ()) or STABLE_LIMIT.get(c) == k
+                    if c in res and seedable and res[c].rmse < res[k].rmse:
+                        again = fit_model(k, dt, u, y, period_s, amplitude, variant=variant,
+                                          u_ref=u_ref, seed=res[c])
+                        if again.rmse < res[k].rmse:
+                            res[k] = again
         return res
 
     # the cheap base families decide whether the record starts at rest
@@ -581,9 +629,10 @@ def select_model(models: dict[str, Model], n_samples: int, amplitude: float,
     """Choose a model by fit quality (BIC) and normalized delay (Berner 2017).
 
     A model with a non-positive gain or a non-finite residual is never chosen. The lowest BIC
-    wins, except that a richer family must earn its extra parameters against the simpler
-    family it contains (``NESTED_IN``: ``sopdt`` over ``fopdt``, ``topdt`` over ``sopdt``,
-    ``ztopdt`` over ``topdt``, ``isopdt`` over ``ipdt``): its misfit must be more than 10 %
+    wins, except that a richer family must earn its extra parameters against each simpler
+    family it contains (``NESTED_IN``: by an extra factor, e.g. ``topdt`` over ``sopdt``, or
+    as a limit, e.g. ``topdt`` over ``isopdt``: an integrator is a lag far slower than the
+    record, whose static gain the record cannot show): its misfit must be more than 10 %
     below the simpler one's, more than 30 % for a delay-dominated ``fopdt`` (``tau > 0.6``).
     The misfit is the residual in excess of the measurement noise ``noise_std`` (when given),
     ``sqrt(rmse^2 - noise^2)``, floored at 0.3 noise deviations and 1e-4 of the amplitude, so
@@ -600,13 +649,14 @@ def select_model(models: dict[str, Model], n_samples: int, amplitude: float,
     def misfit(m: Model) -> float:
         return max(float(np.sqrt(max(m.rmse ** 2 - sig ** 2, 0.0))), floor)
 
+    def earns(m: Model, simpler: Model) -> bool:
+        need = 0.7 if simpler.kind == "fopdt" and simpler.normalized_delay > 0.6 else 0.9
+        return misfit(m) <= need * misfit(simpler)
+
     pool = dict(ok)
     while True:
         best = min(pool.values(), key=lambda m: _bic(m, n, amplitude))
-        simpler = ok.get(NESTED_IN.get(best.kind, ""))
-        if simpler is None or len(pool) == 1:
-            return best
-        need = 0.7 if simpler.kind == "fopdt" and simpler.normalized_delay > 0.6 else 0.9
-        if misfit(best) <= need * misfit(simpler):
+        simpler = [ok[c] for c in NESTED_IN.get(best.kind, ()) if c in ok]
+        if len(pool) == 1 or all(earns(best, s) for s in simpler):
             return best
         del pool[best.kind]
