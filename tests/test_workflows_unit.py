@@ -7,7 +7,6 @@ import json
 import threading
 from types import SimpleNamespace
 
-import numpy as np
 import pytest
 
 from agent import operations, workflows
@@ -184,18 +183,6 @@ def test_tune_one_verifies_on_the_simulated_board_and_the_log_has_every_step(sta
     assert ver["step"] == pytest.approx(lr.verification["step"])
 
 
-def test_a_step_below_the_noise_floor_is_refused_not_passed(stand_on):
-    # before: a step of 0.0066 against a noise of 0.008 passed on a 243 % allowance
-    st = stand_on()
-    plan = Plan(loops=(LoopPlan("roll", "rate"),))
-    lr = operations.tune_one(st, plan.loops[0], plan)
-    assert lr.status == LoopStatus.VERIFIED, lr.message
-    lr.noise_std = 10.0 * lr.verification["step"]  # a noise no allowed step stands out of
-    ver = operations.reverify(st, lr, plan, exp_id="roll-rate-verify-noisy")
-    assert not ver["passed"] and ver["experiment"] is None
-    assert "times the measurement noise" in ver["problems"][0]
-
-
 def test_the_relay_stays_inside_the_actuators_headroom():
     # common practice, no source: bias +/- amplitude inside the output range; before, a heave
     # rail with little thrust margin ran its relay at 0.93 +/- 0.15 (clipped at full thrust)
@@ -209,16 +196,6 @@ def test_the_relay_stays_inside_the_actuators_headroom():
         relay_ceiling(stand, lp, None, trim=0.97)
 
 
-def test_rest_is_judged_on_the_trend_not_on_the_noise():
-    from agent.workflows.hold import drift_over
-    rng = np.random.default_rng(3)
-    t = np.arange(300) * 1e-3
-    still = 0.01 * rng.standard_normal(t.size)  # noise ten times the drift bound below
-    assert drift_over(t, still) < 0.005
-    moving = still + 0.5 * t  # 0.5 units/s: 0.15 over the window
-    assert drift_over(t, moving) == pytest.approx(0.15, abs=0.01)
-
-
 def test_the_headroom_counts_from_the_feed_forward():
     # the board's output limit applies around its feed-forward (a hover trim): a trim at the
     # feed-forward leaves the whole limit to the relay
@@ -229,3 +206,11 @@ def test_the_headroom_counts_from_the_feed_forward():
     assert relay_ceiling(stand, lp, None, trim=0.44) == pytest.approx(0.25)
     assert relay_ceiling(stand, lp, None, trim=0.42 + 0.4) == pytest.approx(
         (1 - HEADROOM_MARGIN) * 0.5 - 0.4)
+
+
+def test_a_step_judged_against_a_prediction_without_overshoot():
+    # a candidate whose model predicts no overshoot (None) crashed the verdict's message
+    plan = Plan(loops=())
+    problems, _ = workflows.judge_step({"overshoot": 0.4, "rise_s": 0.1},
+                                       {"overshoot": None, "rise_s": 0.1}, plan, None, 1.0)
+    assert problems and "exceeds the predicted 0%" in problems[0]

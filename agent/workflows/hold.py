@@ -17,62 +17,6 @@ from .results import Progress, ProgressFn, Stage, quiet
 
 HOLD_S = {"rate": 0.5, "angle": 1.0, "heave": 2.0}
 LIFT_S = 4.0
-REST_WINDOW_S = 0.3   # board time over which "at rest" is judged
-REST_DRIFT = 0.02     # at rest: the measurement drifts by less than this share of its kill
-                      # threshold over the window (common practice, no source)
-REST_TIMEOUT_S = 10.0  # board time to wait for rest before giving up
-
-
-def drift_over(t_s: np.ndarray, y: np.ndarray) -> float:
-    """How far the measurement moves over its window by its least-squares trend (noise-robust):
-    |slope| times the window's length."""
-    if t_s.size < 3 or np.ptp(t_s) <= 0:
-        return float("inf")
-    slope = np.polyfit(t_s - t_s[0], y, 1)[0]
-    return float(abs(slope) * np.ptp(t_s))
-
-
-def wait_for_rest(stand: Stand, lp: LoopPlan, plan: Plan, stop: threading.Event | None,
-                  progress: ProgressFn = quiet) -> float:
-    """Wait until the axis has settled after whatever ran before (a verification step, a
-    lift-off): a hold that starts in a transient takes its trim and noise from the transient.
-
-    Returns the drift seen last (measurement units over REST_WINDOW_S).
-
-    Raises
-    ------
-    WorkflowError
-        The axis did not come to rest within REST_TIMEOUT_S of board time.
-    """
-    axis_i, loop_i = ids(lp)
-    bound = REST_DRIFT * plan.limits.threshold(axis_i, loop_i)
-    full_rate_telemetry(stand, loop_i)
-    first_us = None
-    drift = float("inf")
-    said = False
-    while True:
-        wait(stand, stop, 0.05)
-        rows = [(tel.time_us, s.measurement) for _, tel in list(stand.buffer.live)
-                for s in tel.axes if s.axis == axis_i and s.loop == loop_i]
-        if len(rows) < 10:
-            continue
-        t_us = np.array([r[0] for r in rows], dtype=float)
-        y = np.array([r[1] for r in rows], dtype=float)
-        first_us = t_us[0] if first_us is None else first_us
-        win = t_us >= t_us[-1] - REST_WINDOW_S * 1e6
-        if t_us[-1] - t_us[win][0] >= 0.9 * REST_WINDOW_S * 1e6:
-            drift = drift_over(t_us[win] * 1e-6, y[win])
-            if drift <= bound:
-                return drift
-            if not said:
-                said = True
-                progress(Progress(Stage.NOISE, f"{lp.key}: waiting for the axis to come to "
-                                  f"rest (drifting {drift:.3g} per {REST_WINDOW_S:g} s)", lp.key))
-        if t_us[-1] - first_us > REST_TIMEOUT_S * 1e6:
-            raise WorkflowError(
-                f"{lp.key}: the axis did not come to rest within {REST_TIMEOUT_S:g} s (it "
-                f"drifts {drift:.3g} per {REST_WINDOW_S:g} s, at most {bound:.3g} allowed): an "
-                "axis with no restoring moment needs its outer loop closed, or a stand lock")
 
 
 def hold_seconds(lp: LoopPlan) -> float:
@@ -90,7 +34,6 @@ def noise_check(stand: Stand, lp: LoopPlan, plan: Plan, progress: ProgressFn = q
     height the frame is at. Returns ``{"noise_std", "trim", "setpoint", "samples"}``.
     """
     axis_i, loop_i = ids(lp)
-    wait_for_rest(stand, lp, plan, stop, progress)
     setpoint = 0.0
     if lp.loop == "heave":
         full_rate_telemetry(stand, loop_i)
