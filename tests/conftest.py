@@ -35,3 +35,14 @@ def mock_pty():
     yield start
     for h in handles:
         h.stop()
+
+
+def wait_for(cond, timeout: float = 60.0, poll: float = 0.01) -> bool:
+    """Poll ``cond()`` until it is true or ``timeout`` seconds pass; True when it became true."""
+    import time
+    end = time.monotonic() + timeout
+    while time.monotonic() < end:
+        if cond():
+            return True
+        time.sleep(poll)
+    return False

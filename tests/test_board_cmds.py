@@ -4,23 +4,15 @@ pty: status, disarm, kill-clear, gains --export, settings --apply, restore."""
 from __future__ import annotations
 
 import json
-import time
 
 import pytest
 
 from agent.settingsfile import FORMAT_NAME, format_settings, parse_settings
 from agent.errors import UserError
-from protocol.messages import DeviceState, KillReason
-from tests.conftest import run_cli
+from protocol.messages import DeviceState
+from tests.conftest import run_cli, wait_for
 
 
-def wait_for(cond, timeout=30.0, poll=0.01):
-    end = time.monotonic() + timeout
-    while time.monotonic() < end:
-        if cond():
-            return True
-        time.sleep(poll)
-    return False
 
 
 def test_status_reports_state_and_read_back_gains(mock_pty):

@@ -21,7 +21,7 @@ import pytest
 from agent.logbook import read_session
 from mock_device.scenarios import load_scenario
 from protocol.messages import DeviceState, ExperimentKind, KillReason
-from tests.conftest import run_cli
+from tests.conftest import run_cli, wait_for
 
 
 def exact_ultimate(num, den, delay_s):
@@ -44,13 +44,6 @@ def start_tune(h, log_dir, axis, loop, **popen):
     return proc
 
 
-def wait_for(cond, timeout=60.0, poll=0.01):
-    end = time.monotonic() + timeout
-    while time.monotonic() < end:
-        if cond():
-            return True
-        time.sleep(poll)
-    return False
 
 
 @pytest.mark.parametrize("scenario, loop", [

@@ -10,26 +10,19 @@ import os
 import signal
 import subprocess
 import sys
-import time
 
 import pytest
 
-from agent import operations, workflows
+from agent import operations
 from agent.errors import LogbookError
 from agent.logbook.writer import ExperimentLog
 from agent.plan import LoopPlan, Plan
 from agent.workflows import LoopStatus, Outcome
 from mock_device.runner import start_mock
 from protocol.messages import DeviceState, ExperimentKind, KillReason
+from tests.conftest import wait_for
 
 
-def wait_for(cond, timeout=60.0, poll=0.01):
-    end = time.monotonic() + timeout
-    while time.monotonic() < end:
-        if cond():
-            return True
-        time.sleep(poll)
-    return False
 
 
 @pytest.fixture
