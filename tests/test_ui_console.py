@@ -65,7 +65,7 @@ def demo_app(tmp_path, speed=SPEED) -> StandConsole:
 
 async def connected(pilot) -> None:
     app = pilot.app
-    await wait_for(pilot, lambda: app.stand is not None and app.busy is None,
+    await wait_for(pilot, lambda: app.controller.stand is not None and app.controller.busy is None,
                    "the simulated stand to connect")
     await pilot.pause(0.2)
 
@@ -102,7 +102,7 @@ async def start_and_confirm(pilot) -> None:
     await pilot.press("g")
     await wait_for(pilot, lambda: isinstance(app.screen, CautionScreen)
                    and getattr(app.focused, "id", None) == "caution-input", "the safety check")
-    assert app.stand.state == DeviceState.DISARMED, "nothing is armed before the confirmation"
+    assert app.controller.stand.state == DeviceState.DISARMED, "nothing is armed before the confirmation"
     await pilot.press("y", "e", "s", "enter")
 
 
@@ -144,22 +144,22 @@ def test_autotune_from_the_keyboard(tmp_path):
             states = set()
 
             def finished():
-                if app.stand is not None:
-                    states.add(app.stand.state)
-                return app.busy is None and app.result is not None
+                if app.controller.stand is not None:
+                    states.add(app.controller.stand.state)
+                return app.controller.busy is None and app.controller.result is not None
 
             await wait_for(pilot, finished, "the run to finish")
-            assert app.stand.confirmed
+            assert app.controller.stand.confirmed
             assert DeviceState.RUNNING in states, "the strip polled a running board"
-            result = app.result
+            result = app.controller.result
             assert result.outcome == "ok", result.message
             assert [lr.status for lr in result.loops] == ["applied"]
             checklist = _text(app.query_one("#checklist"))
             assert "[+] 1. roll.rate" in checklist and "applied" in checklist
             runlog = "\n".join(s.text for s in app.query_one("#run-log").lines)
             assert "outcome: ok" in runlog and "Ku" in runlog
-            assert app.stand.state == DeviceState.DISARMED
-            # the strip is redrawn by a timer: wait for a drawing made after the run ended
+            assert app.controller.stand.state == DeviceState.DISARMED
+            # the strip is redrawn when the run's worker ends: wait for that drawing
             await wait_for(pilot, lambda: screen_lines(app)[0].startswith(" DISARMED")
                            and "running the plan" not in screen_lines(app)[0],
                            "the state strip to show DISARMED, no longer running")
@@ -168,7 +168,7 @@ def test_autotune_from_the_keyboard(tmp_path):
             await pilot.pause(0.3)
             text = _text(app.query_one("#results-ident"))
             # what is shown is what the workflow computed (the console computes nothing)
-            lr = app.result.loops[0]
+            lr = app.controller.result.loops[0]
             best, plant = lr.identification.best, lr.identification.best_plant
             assert kv_value(text, "Ku") == pytest.approx(best.ku, rel=1e-3)
             assert kv_value(text, "Tu") == pytest.approx(best.tu_s, rel=1e-3)
@@ -197,15 +197,15 @@ def test_autotune_from_the_keyboard(tmp_path):
             table.move_cursor(row=other)
             await pilot.pause(0.1)
             await pilot.press("a")
-            await wait_for(pilot, lambda: app.busy is None and lr.applied_gains != before,
+            await wait_for(pilot, lambda: app.controller.busy is None and lr.applied_gains != before,
                            "the other candidate to be applied")
             kp_name = "roll.rate.kp"
-            assert app.stand.session.values[kp_name] == pytest.approx(
+            assert app.controller.stand.session.values[kp_name] == pytest.approx(
                 lr.tuning.candidates[other].kp, rel=1e-5)
             await pilot.press("b")
-            await wait_for(pilot, lambda: app.busy is None and lr.status == "rolled_back",
+            await wait_for(pilot, lambda: app.controller.busy is None and lr.status == "rolled_back",
                            "the roll back")
-            assert app.stand.session.values[kp_name] == pytest.approx(before[kp_name], rel=1e-5)
+            assert app.controller.stand.session.values[kp_name] == pytest.approx(before[kp_name], rel=1e-5)
             await pilot.press("ctrl+q")
 
     asyncio.run(run())
@@ -224,19 +224,19 @@ def test_kill_key_during_the_relay(tmp_path):
             await plan_one_loop(pilot, verify=False)
             await start_and_confirm(pilot)
             run_pane = app.query_one("#run")
-            fw = app.stand.mock.firmware
+            fw = app.controller.stand.mock.firmware
             # the "ramp" stage is announced just before the relay is started on the board:
             # wait until the board runs it
             await wait_for(pilot, lambda: run_pane.stage in ("ramp", "relay")
                            and fw.exp is not None and fw.exp.kind == ExperimentKind.RELAY
-                           and app.stand.state == DeviceState.RUNNING,
+                           and app.controller.stand.state == DeviceState.RUNNING,
                            "the relay experiment")
             await pilot.press("ctrl+k")
-            await wait_for(pilot, lambda: app.stand.mock.firmware.state == DeviceState.KILLED,
+            await wait_for(pilot, lambda: app.controller.stand.mock.firmware.state == DeviceState.KILLED,
                            "the simulated board to report KILLED")
-            await wait_for(pilot, lambda: app.busy is None, "the workflow to end")
-            assert app.result is None or app.result.outcome in ("killed", "failed")
-            await wait_for(pilot, lambda: app.stand.state == DeviceState.KILLED
+            await wait_for(pilot, lambda: app.controller.busy is None, "the workflow to end")
+            assert app.controller.result is None or app.controller.result.outcome in ("killed", "failed")
+            await wait_for(pilot, lambda: app.controller.stand.state == DeviceState.KILLED
                            and "KILLED" in screen_lines(app)[0]
                            and "host_operator" in screen_lines(app)[0],
                            "the strip to show KILLED by host_operator")
@@ -248,9 +248,9 @@ def test_kill_key_during_the_relay(tmp_path):
             assert not isinstance(app.screen, CautionScreen)
             # clear the kill, by key, and the board is usable again
             await pilot.press("x")
-            await wait_for(pilot, lambda: app.busy is None and not app.stand.killed,
+            await wait_for(pilot, lambda: app.controller.busy is None and not app.controller.stand.killed,
                            "the kill to clear")
-            assert app.stand.mock.firmware.state == DeviceState.DISARMED
+            assert app.controller.stand.mock.firmware.state == DeviceState.DISARMED
             assert not app.query_one("#kill-box").display
             await pilot.press("ctrl+q")
 
@@ -263,7 +263,7 @@ def test_kill_key_on_the_safety_check_and_without_a_board(tmp_path):
         async with app.run_test(size=(80, 24)) as pilot:
             await pilot.press("ctrl+k")  # no board: says so, does not crash
             await pilot.pause(0.1)
-            assert app.stand is None
+            assert app.controller.stand is None
             assert any("nothing to kill" in n.message for n in app._notifications)
         app = demo_app(tmp_path)
         async with app.run_test(size=(80, 24)) as pilot:
@@ -271,12 +271,12 @@ def test_kill_key_on_the_safety_check_and_without_a_board(tmp_path):
             await plan_one_loop(pilot, verify=True)
             await start_and_confirm_only_show(pilot)
             await pilot.press("ctrl+k")  # the modal is on top: the kill still goes out
-            await wait_for(pilot, lambda: app.stand.mock.firmware.state == DeviceState.KILLED,
+            await wait_for(pilot, lambda: app.controller.stand.mock.firmware.state == DeviceState.KILLED,
                            "the board to be killed from the safety check")
             await pilot.press("escape")
             await pilot.pause(0.1)
             assert not isinstance(app.screen, CautionScreen)
-            assert not app.stand.confirmed, "cancelled: nothing confirmed, nothing armed"
+            assert not app.controller.stand.confirmed, "cancelled: nothing confirmed, nothing armed"
             await pilot.press("ctrl+q")
 
     asyncio.run(run())
@@ -312,7 +312,7 @@ def test_plan_errors_are_shown_before_anything_is_armed(tmp_path):
             await pilot.pause(0.2)
             assert not isinstance(app.screen, CautionScreen), "an invalid plan never asks to arm"
             assert app.query_one("#tabs").active == "tab-plan", "sent back to the plan"
-            assert app.stand.state == DeviceState.DISARMED
+            assert app.controller.stand.state == DeviceState.DISARMED
             plan.set_field("angle_deg", "30")
             plan.select_loops([])
             await pilot.pause(0.1)
@@ -335,8 +335,8 @@ def test_wrong_confirmation_word_does_not_arm(tmp_path):
             assert "is not 'yes'" in _text(app.screen.query_one("#caution-hint"))
             await pilot.press("escape")
             await pilot.pause(0.2)
-            assert app.stand.state == DeviceState.DISARMED and not app.stand.confirmed
-            assert app.busy is None
+            assert app.controller.stand.state == DeviceState.DISARMED and not app.controller.stand.confirmed
+            assert app.controller.busy is None
             await pilot.press("ctrl+q")
 
     asyncio.run(run())
@@ -364,16 +364,16 @@ def test_a_kill_on_the_board_is_shown_with_its_reason(tmp_path):
         async with app.run_test(size=(80, 24)) as pilot:
             await connected(pilot)
             await pilot.press("f3")  # any tab: the strip and the Run tab's box both show it
-            app.stand.mock.firmware.press_kill_button()  # the board's own kill input
-            await wait_for(pilot, lambda: app.last_kill is not None, "the board's kill event")
-            assert app.last_kill["origin"] == "device"
+            app.controller.stand.mock.firmware.press_kill_button()  # the board's own kill input
+            await wait_for(pilot, lambda: app.controller.last_kill is not None, "the board's kill event")
+            assert app.controller.last_kill["origin"] == "device"
             # the status reply can turn the strip KILLED before the kill event arrives; the
             # strip must then gain the reason as well (CI once read it in between)
-            shown = f"device: {app.last_kill['reason']}"
+            shown = f"device: {app.controller.last_kill['reason']}"
             await wait_for(pilot, lambda: screen_lines(app)[0].startswith(" KILLED")
                            and shown in screen_lines(app)[0], "the strip to show KILLED and why")
             box = _text(app.query_one("#kill-box"))
-            assert "by device" in box and app.last_kill["reason"] in box
+            assert "by the board" in box and app.controller.last_kill["reason"] in box
             await pilot.press("ctrl+q")
 
     asyncio.run(run())
@@ -423,3 +423,144 @@ def test_results_list_the_fallback_candidate_that_was_applied():
 def test_numbers_for_people(x, digits, shown):
     from agent.ui.widgets import fmt
     assert fmt(x, digits) == shown
+
+
+# ------------------------------------------------------------------------------ one path for gains
+# The Results tab's apply, verify and roll back go through agent.operations, the same path as
+# `tune --apply` and autotune; each test below failed while the console had its own copies.
+
+
+def _made_up_result(key: str, b: float, operating_point: float, previous_gains: dict):
+    """A tuned loop's result with one candidate of setpoint weight ``b`` (invented numbers: the
+    design of a textbook plant 1/(s+1)^3 with its gains replaced), as if a run had produced it."""
+    from dataclasses import replace
+
+    from agent.analysis import identify, simulate_relay, tune
+    from agent.workflows import LoopResult, LoopStatus
+
+    rec = simulate_relay([1], [1, 3, 3, 1], 0.0, 1.0, 0.0, 0.0, 0.01, 40.0)
+    ident = identify(rec)
+    base = tune(ident, controller="pid")
+    cand = replace(base.candidates[0], rule="made_up", kp=0.8, ki=0.4, kd=0.0, tf_s=0.0, b=b,
+                   i_limit=0.1)
+    tuning = replace(base, candidates=(cand,), recommended="made_up")
+    axis, loop = key.split(".")
+    lr = LoopResult(key, axis, loop, "pid", status=LoopStatus.TUNED, identification=ident,
+                    tuning=tuning, chosen=cand, operating_point=operating_point,
+                    previous_gains=dict(previous_gains))
+    return lr, cand
+
+
+def _show_result(app, loops) -> None:
+    from agent.workflows import StandResult
+    app.controller.set_result(StandResult(loops=list(loops)))
+
+
+def test_apply_from_the_results_tab_writes_the_operating_point_i_limit(tmp_path):
+    async def run():
+        app = StandConsole(ConsoleOptions(demo=True, log_dir=str(tmp_path / "logs"),
+                                          scenario="heave-rail", speed=SPEED, seed=1))
+        async with app.run_test(size=(80, 24)) as pilot:
+            await connected(pilot)
+            ctl = app.controller
+            stand = ctl.stand
+            op = 0.6  # m: the height the loop was tuned at
+            lr, cand = _made_up_result("heave.heave", b=0.5, operating_point=op,
+                                       previous_gains={})
+            _show_result(app, [lr])
+            await pilot.press("f6")
+            table = app.query_one("#candidates")
+            await wait_for(pilot, lambda: table.row_count == 1, "the made-up candidate listed")
+            table.focus()
+            await pilot.press("a")
+            await wait_for(pilot, lambda: ctl.busy is None and lr.status == "applied",
+                           "the candidate to be applied")
+            # With b < 1 the integrator must also hold kp*(1-b)*r0 at the operating point r0:
+            # the limit covers that plus the output limit, within the board's bound (the rule
+            # of workflows.gains_of, which `tune --apply` uses; common practice, no source).
+            out_limit = stand.session.values["heave.heave.out_limit"]
+            top = stand.session.setting("heave.heave.i_limit").maximum
+            want = min(max(cand.i_limit, out_limit + cand.kp * (1 - cand.b) * op), top)
+            assert want != pytest.approx(cand.i_limit), "the test needs the operating point"
+            on_board = stand.mock.firmware.settings.values["heave.heave.i_limit"]
+            assert on_board == pytest.approx(want, rel=1e-5)
+            assert lr.applied_gains["heave.heave.i_limit"] == pytest.approx(want, rel=1e-5)
+            from agent import workflows
+            from agent.plan import LoopPlan
+            same = workflows.gains_of(cand, LoopPlan("heave", "heave", "pid"), op, stand)
+            assert on_board == pytest.approx(same["heave.heave.i_limit"], rel=1e-5)
+            await pilot.press("ctrl+q")
+
+    asyncio.run(run())
+
+
+def test_verify_from_the_results_tab_uses_autotunes_arguments(tmp_path):
+    async def run():
+        app = demo_app(tmp_path)
+        async with app.run_test(size=(80, 24)) as pilot:
+            await connected(pilot)
+            ctl = app.controller
+            await plan_one_loop(pilot, verify=False)
+            await start_and_confirm(pilot)
+            await wait_for(pilot, lambda: ctl.busy is None and ctl.result is not None,
+                           "the run to finish")
+            lr = ctl.result.loops[0]
+            assert lr.status == "applied" and lr.verification is None
+            await pilot.press("f6")
+            app.query_one("#candidates").focus()
+            await pilot.press("v")
+            await wait_for(pilot, lambda: ctl.busy is None and lr.verification is not None,
+                           "the verification step")
+            ver = lr.verification
+            assert "step" in ver, ver
+            from agent import operations, workflows
+            plan = ctl.run_plan
+            amp_seen = lr.relay["amplitude_seen"]
+            # autotune's step: 1.5 times the relay's oscillation, sized as plan_step does (the
+            # relay target's cap, the outer loop's room), timed with the relay's period
+            sized = workflows.plan_step(ctl.stand, operations.loop_plan_of(lr, plan), plan,
+                                        lr.chosen, 1.5 * amp_seen, lr.relay.get("period_s"))
+            assert ver["step"] == pytest.approx(sized.step, rel=1e-9)
+            assert ver["step"] <= 1.5 * amp_seen * (1 + 1e-9)
+            # the noise allowance autotune gives the overshoot (2 sigma/step, see judge_step)
+            assert lr.noise_std > 0
+            assert ver["overshoot_allowance"] == pytest.approx(2 * lr.noise_std
+                                                               / abs(ver["step"]), rel=1e-9)
+            assert ver["setpoint"] == pytest.approx(lr.operating_point)
+            await pilot.press("ctrl+q")
+
+    asyncio.run(run())
+
+
+def test_rollback_from_the_results_tab_out_of_bounds_writes_nothing(tmp_path):
+    async def run():
+        app = demo_app(tmp_path)
+        async with app.run_test(size=(80, 24)) as pilot:
+            await connected(pilot)
+            ctl = app.controller
+            values = ctl.stand.mock.firmware.settings.values
+            kp0, ki0 = values["roll.rate.kp"], values["roll.rate.ki"]
+            # an earlier kp beyond the board's bound (0..1000) beside a legal ki
+            lr, cand = _made_up_result("roll.rate", b=1.0, operating_point=0.0,
+                                       previous_gains={"roll.rate.kp": 5000.0,
+                                                       "roll.rate.ki": ki0 + 1.0})
+            lr.status, lr.applied_gains = "applied", {"roll.rate.kp": kp0, "roll.rate.ki": ki0}
+            _show_result(app, [lr])
+            await pilot.press("f6")
+            app.query_one("#candidates").focus()
+            await pilot.press("b")
+
+            def said() -> str:
+                return " ".join(n.message for n in app._notifications)
+
+            await wait_for(pilot, lambda: ctl.busy is None and "ROLLBACK FAILED" in said(),
+                           "the roll back to be refused")
+            assert "outside the board's bounds" in said(), said()
+            assert values["roll.rate.kp"] == kp0 and values["roll.rate.ki"] == ki0, \
+                "nothing written"
+            assert lr.status == "rollback_failed", "the loop's record says so too"
+            await wait_for(pilot, lambda: "rollback_failed" in _text(
+                app.query_one("#results-status")), "the Results tab to show the failure")
+            await pilot.press("ctrl+q")
+
+    asyncio.run(run())

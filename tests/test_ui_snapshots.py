@@ -48,7 +48,7 @@ def normalized(app, log_dir: str) -> str:
         s = re.sub(r"/dev/pts/\d+", "<PTY>", s)
         s = re.sub(r"\d[\d.,]*(e[+-]?\d+)?", "#", s)
         # the link figures read "-" until their first second of telemetry has been counted
-        s = re.sub(r"(?<= )-(?= (tel/s|ms)\b)", "#", s)
+        s = re.sub(r"(?<= )-(?= (tel/s|frames/s|ms)\b)", "#", s)
         s = re.sub(r" {2,}", " ", s).rstrip()
         out.append(s)
     return "\n".join(out) + "\n"

@@ -3,16 +3,14 @@ healthy the link is."""
 
 from __future__ import annotations
 
-import time
-
 from textual.app import ComposeResult
 from textual.binding import Binding
 from textual.containers import Horizontal, Vertical
+from textual.message import Message
 from textual.widgets import Input, Label, ListItem, ListView, Static
 
+from ..state import MOCK_ID, LinkHealth
 from ..widgets import KeyValues, fmt
-
-MOCK_ID = "__mock__"
 
 
 class PortItem(ListItem):
@@ -22,10 +20,26 @@ class PortItem(ListItem):
 
 
 class LinkPane(Vertical):
+    """Posts ConnectRequested(port) and DisconnectRequested; shows what it is given."""
+
     BINDINGS = [
         Binding("u", "refresh_ports", "Rescan ports"),
         Binding("d", "disconnect", "Disconnect"),
     ]
+
+    class ConnectRequested(Message):
+        """Connect to ``port`` (a device path, a URL, or MOCK_ID for the simulated stand)."""
+
+        def __init__(self, port: str) -> None:
+            super().__init__()
+            self.port = port
+
+    class DisconnectRequested(Message):
+        """Close the connection."""
+
+    def __init__(self, mock_label: str, **kw):
+        super().__init__(**kw)
+        self.mock_label = mock_label
 
     def compose(self) -> ComposeResult:
         with Horizontal(id="link-row"):
@@ -40,8 +54,6 @@ class LinkPane(Vertical):
         yield Static("", id="link-message", classes="message")
 
     def on_mount(self) -> None:
-        self._last = (time.monotonic(), 0)
-        self.rate_hz = float("nan")
         self.action_refresh_ports()
         self.show_identity(None)
 
@@ -49,13 +61,11 @@ class LinkPane(Vertical):
     def action_refresh_ports(self) -> None:
         lv = self.query_one("#port-list", ListView)
         lv.clear()
-        opts = self.app.options
-        lv.append(PortItem(MOCK_ID, f"Simulated stand (built-in, invented '{opts.scenario}', "
-                                    f"clock x{opts.speed})"))
+        lv.append(PortItem(MOCK_ID, self.mock_label))
         try:
             from agent.link import list_ports
             ports = list_ports()
-        except Exception as exc:  # pyserial's enumeration can fail on odd systems
+        except OSError as exc:  # pyserial's enumeration can fail on odd systems
             ports = []
             self.say(f"could not list serial ports: {exc}")
         for dev, desc, hwid in ports:
@@ -67,7 +77,7 @@ class LinkPane(Vertical):
     def on_list_view_selected(self, event: ListView.Selected) -> None:
         item = event.item
         if isinstance(item, PortItem) and item.port:
-            self.app.connect(item.port)
+            self.post_message(self.ConnectRequested(item.port))
 
     def on_input_submitted(self, event: Input.Submitted) -> None:
         port = event.value.strip()
@@ -75,10 +85,10 @@ class LinkPane(Vertical):
             self.say("type a serial device path (e.g. /dev/ttyACM0) or a URL "
                      "(socket://host:port) first")
             return
-        self.app.connect(port)
+        self.post_message(self.ConnectRequested(port))
 
     def action_disconnect(self) -> None:
-        self.app.disconnect()
+        self.post_message(self.DisconnectRequested())
 
     def say(self, text: str, error: bool = False) -> None:
         msg = self.query_one("#link-message", Static)
@@ -100,22 +110,17 @@ class LinkPane(Vertical):
                     ("simulated", "yes (invented stand)" if stand.mock is not None else "no")],
                    title="Board")
 
-    def tick(self, stand) -> None:
-        """Refresh link health (called by the app's timer)."""
-        if stand is None:
+    def show_health(self, h: LinkHealth | None) -> None:
+        """The link's figures (drawn on connecting, on showing the tab, and by the app's link
+        timer)."""
+        if h is None:
+            self.query_one("#health", KeyValues).show([], title="Link")
             return
-        st = stand.link.stats
-        now = time.monotonic()
-        t0, n0 = self._last
-        if now - t0 >= 0.5:
-            self.rate_hz = (st.telemetry - n0) / (now - t0)
-            self._last = (now, st.telemetry)
-        lost = stand.link.lost_reason
         self.query_one("#health", KeyValues).show([
-            ("telemetry", f"{fmt(self.rate_hz, 4)} frames/s"),
-            ("frames in/out", f"{st.frames_in} / {st.frames_out}"),
-            ("bad frames", str(st.bad_frames)),
-            ("retries/timeouts", f"{st.retries} / {st.timeouts}"),
-            ("latency median", fmt(stand.link.latency_ms_median(), 3, "ms")),
-            ("link", f"LOST: {lost}" if lost else "ok"),
+            ("telemetry", f"{fmt(h.rate_hz, 4)} frames/s"),
+            ("frames in/out", f"{h.frames_in} / {h.frames_out}"),
+            ("bad frames", str(h.bad_frames)),
+            ("retries/timeouts", f"{h.retries} / {h.timeouts}"),
+            ("latency median", fmt(h.latency_ms, 3, "ms")),
+            ("link", f"LOST: {h.lost}" if h.lost else "ok"),
         ], title="Link health")

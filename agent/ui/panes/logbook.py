@@ -10,15 +10,25 @@ from textual.app import ComposeResult
 from textual.binding import Binding
 from textual.containers import Horizontal, Vertical
 from textual.widgets import DataTable, RichLog, Static
+from textual.worker import Worker, WorkerState
+
+from agent.errors import TetherloopError
 
 
 class LogbookPane(Vertical):
+    """The session logs of ``log_dir`` (None: the default folder). Reading and re-analysing run
+    in workers of their own (group ``logbook``): they never touch the stand."""
+
     BINDINGS = [
         Binding("u", "refresh", "Rescan"),
         Binding("r", "reanalyse", "Re-analyse"),
         Binding("e", "export", "Export"),
         Binding("h", "report", "Report"),
     ]
+
+    def __init__(self, log_dir: str | None, **kw):
+        super().__init__(**kw)
+        self._log_dir = log_dir
 
     def compose(self) -> ComposeResult:
         yield Static("", id="logbook-where", classes="message")
@@ -34,7 +44,7 @@ class LogbookPane(Vertical):
 
     def log_dir(self) -> Path:
         from agent.logbook import default_log_dir
-        d = self.app.options.log_dir
+        d = self._log_dir
         return Path(d).expanduser() if d else default_log_dir()
 
     def action_refresh(self) -> None:
@@ -105,7 +115,7 @@ class LogbookPane(Vertical):
     def _need_open(self) -> Path | None:
         path = self.opened or self.selected_path()
         if path is None:
-            self.app.notify("choose a session first (arrows, Enter)", severity="warning")
+            self.notify("choose a session first (arrows, Enter)", severity="warning")
         return path
 
     def action_reanalyse(self) -> None:
@@ -124,42 +134,52 @@ class LogbookPane(Vertical):
         if path is not None:
             self._report(path, path / "report.html")
 
-    @work(thread=True, exclusive=True, group="logbook")
-    def _reanalyse(self, path: Path) -> None:
+    # the workers return the lines to show; an error they did not expect is shown by
+    # on_worker_state_changed (and never stops the console)
+    @work(thread=True, exclusive=True, group="logbook", exit_on_error=False,
+          description="re-analysis")
+    def _reanalyse(self, path: Path) -> list[str]:
         from agent.logbook import analyze_session
         try:
             results = analyze_session(path)
-        except Exception as exc:
-            self.app.call_from_thread(self._detail().write, f"re-analysis failed: {exc}")
-            return
+        except (TetherloopError, OSError) as exc:
+            return [f"re-analysis failed: {exc}"]
         lines = [f"re-analysis of {path.name} with the current code:"]
         for r in results:
             lines.append(f"  {r.exp_id:<22} {r.status:<10} {r.message}")
             lines += [f"      {d}" for d in r.differences[:5]]
         if not results:
             lines.append("  (no experiments)")
-        self.app.call_from_thread(self._write_lines, lines)
+        return lines
 
-    @work(thread=True, exclusive=True, group="logbook")
-    def _export(self, path: Path, out: Path) -> None:
+    @work(thread=True, exclusive=True, group="logbook", exit_on_error=False,
+          description="export")
+    def _export(self, path: Path, out: Path) -> list[str]:
         from agent.logbook import export_session
         try:
             files = export_session(path, "csv", out)
-        except Exception as exc:
-            self.app.call_from_thread(self._detail().write, f"export failed: {exc}")
-            return
-        self.app.call_from_thread(self._write_lines,
-                                  [f"exported {len(files)} files to {out}"])
+        except (TetherloopError, OSError) as exc:
+            return [f"export failed: {exc}"]
+        return [f"exported {len(files)} files to {out}"]
 
-    @work(thread=True, exclusive=True, group="logbook")
-    def _report(self, path: Path, out: Path) -> None:
+    @work(thread=True, exclusive=True, group="logbook", exit_on_error=False,
+          description="report")
+    def _report(self, path: Path, out: Path) -> list[str]:
         from agent.logbook import report_session
         try:
             written = report_session(path, out)
-        except Exception as exc:
-            self.app.call_from_thread(self._detail().write, f"report failed: {exc}")
+        except (TetherloopError, OSError) as exc:
+            return [f"report failed: {exc}"]
+        return [f"report written: {written}"]
+
+    def on_worker_state_changed(self, event: Worker.StateChanged) -> None:
+        w = event.worker
+        if w.group != "logbook":
             return
-        self.app.call_from_thread(self._write_lines, [f"report written: {written}"])
+        if event.state == WorkerState.SUCCESS:
+            self._write_lines(w.result or [])
+        elif event.state == WorkerState.ERROR:
+            self._write_lines([f"{w.description} failed: {type(w.error).__name__}: {w.error}"])
 
     def _write_lines(self, lines) -> None:
         log = self._detail()

@@ -9,10 +9,11 @@ import math
 
 from textual.app import ComposeResult
 from textual.containers import Horizontal, VerticalScroll
+from textual.message import Message
 from textual.widgets import Checkbox, Input, Label, Select, SelectionList, Static
 
 from agent.plan import (CONTROLLERS, LoopPlan, Plan, PlanError, check_against_device,
-                        default_plan, in_cascade_order, plan_from_dict)
+                        default_plan, in_cascade_order, known_rules, plan_from_dict)
 
 # (key, label, default text) — operator units, the same keys as a plan file
 STAND_FIELDS = (("ms_target", "Ms target (robustness, 1.1-2.5)", "1.4"),
@@ -26,11 +27,7 @@ LIMIT_FIELDS = (("angle_deg", "kill: angle [deg]", "30"),
 
 
 def _rules() -> list[str]:
-    try:
-        from agent.plan import known_rules
-        return ["recommended", *known_rules()]
-    except Exception:  # the analysis package could not say; the plan check will tell
-        return ["recommended"]
+    return ["recommended", *known_rules()]
 
 
 def _value(text: str):
@@ -43,6 +40,17 @@ def _value(text: str):
 
 
 class PlanPane(VerticalScroll):
+    """Is given the board's loops and settings (``set_board``); posts Changed(plan, error)
+    whenever the fields change."""
+
+    class Changed(Message):
+        """The plan the fields describe now: ``plan`` when valid, else None and ``error``."""
+
+        def __init__(self, plan: Plan | None, error: str) -> None:
+            super().__init__()
+            self.plan = plan
+            self.error = error
+
     def compose(self) -> ComposeResult:
         yield Static("Connect a board first (F2): the plan is checked against it.",
                      id="plan-status", classes="message")
@@ -67,24 +75,27 @@ class PlanPane(VerticalScroll):
     def on_mount(self) -> None:
         self.plan: Plan | None = None
         self.error: str = "no board connected"
+        self.axes: dict | None = None  # the board's loops: {axis: (levels)}; None: no board
 
     # ------------------------------------------------------------------ board
-    def set_board(self, stand) -> None:
+    def set_board(self, axes: dict | None, values: dict) -> None:
+        """The connected board's loops and settings values (None: no board)."""
+        self.axes = axes
         sl = self.query_one("#plan-loops", SelectionList)
         sl.clear_options()
-        if stand is not None:
-            loops = in_cascade_order(LoopPlan(a, lv) for a, levels in stand.info.axes.items()
+        if axes is not None:
+            loops = in_cascade_order(LoopPlan(a, lv) for a, levels in axes.items()
                                      for lv in levels)
             for lp in loops:
                 sl.add_option((lp.key, lp.key, True))  # every loop, as the CLI's default plan
             sl.highlighted = 0
-            self._defaults_from(stand)
+            self._defaults_from(axes, values)
         self.validate_plan()
 
-    def _defaults_from(self, stand) -> None:
+    def _defaults_from(self, axes: dict, values: dict) -> None:
         """The same defaults the CLI uses without a plan file: the board's own kill settings
         where it has them (shown in operator units)."""
-        dp = default_plan(stand.info.axes, dict(stand.session.values))
+        dp = default_plan(axes, values)
         lim = dp.limits
         shown = {"angle_deg": math.degrees(lim.angle_rad),
                  "rate_deg_s": math.degrees(lim.rate_rad_s), "heave_m": lim.heave_m,
@@ -122,20 +133,18 @@ class PlanPane(VerticalScroll):
 
     def validate_plan(self) -> Plan | None:
         status = self.query_one("#plan-status", Static)
-        stand = self.app.stand
         self.plan = None
-        if stand is None:
+        if self.axes is None:
             self.error = "no board connected: connect on the Link tab (F2) first"
             status.update(self.error)
             status.set_class(True, "error")
+            self.post_message(self.Changed(None, self.error))
             return None
         try:
             plan = plan_from_dict(self.plan_dict(), source="plan")
-            check_against_device(plan, stand.info.axes)
+            check_against_device(plan, self.axes)
         except PlanError as exc:
             self.error = str(exc)
-        except Exception as exc:  # a fault in the checking code itself: say so plainly
-            self.error = f"the plan could not be checked ({type(exc).__name__}: {exc})"
         else:
             self.plan, self.error = plan, ""
             status.update("Plan OK - cascade order: " + " > ".join(lp.key for lp in plan.loops)
@@ -143,10 +152,11 @@ class PlanPane(VerticalScroll):
                           f"{'verify' if plan.verify and plan.apply else 'no verify'}). "
                           "Start it on the Run tab (F5, then g).")
             status.set_class(False, "error")
-            self.app.plan_changed(plan)
+            self.post_message(self.Changed(plan, ""))
             return plan
         status.update("Plan NOT valid: " + self.error)
         status.set_class(True, "error")
+        self.post_message(self.Changed(None, self.error))
         return None
 
     def on_input_changed(self, event: Input.Changed) -> None:

@@ -9,17 +9,43 @@ from rich.text import Text
 from textual.app import ComposeResult
 from textual.binding import Binding
 from textual.containers import Horizontal, Vertical
+from textual.message import Message
 from textual.widgets import DataTable, Select, Static
 
 from ..widgets import KeyValues, TracePlot, fmt
 
 
 class ResultsPane(Vertical):
+    """Is given the run's loop results (``set_results``, ``refresh_current``); posts
+    ApplyRequested(loop, candidate), VerifyRequested(loop) and RollbackRequested(loop)."""
+
     BINDINGS = [
         Binding("a", "apply", "Apply candidate"),
         Binding("v", "verify", "Verify (step)"),
         Binding("b", "rollback", "Roll back"),
     ]
+
+    class ApplyRequested(Message):
+        """Write ``candidate``'s gains for ``loop`` (a LoopResult; either may be None)."""
+
+        def __init__(self, loop, candidate) -> None:
+            super().__init__()
+            self.loop = loop
+            self.candidate = candidate
+
+    class VerifyRequested(Message):
+        """Step-test the gains applied for ``loop``."""
+
+        def __init__(self, loop) -> None:
+            super().__init__()
+            self.loop = loop
+
+    class RollbackRequested(Message):
+        """Go back to ``loop``'s gains before the last apply."""
+
+        def __init__(self, loop) -> None:
+            super().__init__()
+            self.loop = loop
 
     def compose(self) -> ComposeResult:
         with Horizontal(id="results-head"):
@@ -162,10 +188,10 @@ class ResultsPane(Vertical):
 
     # ------------------------------------------------------------------ actions
     def action_apply(self) -> None:
-        self.app.apply_candidate(self.current(), self.selected_candidate())
+        self.post_message(self.ApplyRequested(self.current(), self.selected_candidate()))
 
     def action_verify(self) -> None:
-        self.app.verify_candidate(self.current())
+        self.post_message(self.VerifyRequested(self.current()))
 
     def action_rollback(self) -> None:
-        self.app.rollback(self.current())
+        self.post_message(self.RollbackRequested(self.current()))

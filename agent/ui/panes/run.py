@@ -8,6 +8,7 @@ from rich.text import Text
 from textual.app import ComposeResult
 from textual.binding import Binding
 from textual.containers import Horizontal, Vertical
+from textual.message import Message
 from textual.widgets import ProgressBar, RichLog, Static
 
 from protocol.messages import Axis, Loop
@@ -16,11 +17,23 @@ from ..widgets import Checklist, TracePlot, fmt
 
 
 class RunPane(Vertical):
+    """Posts RunRequested (g), StopRequested (s) and ClearKillRequested (x); is given the plan,
+    progress events, loop statuses, notes, the kill record and the recording to draw."""
+
     BINDINGS = [
         Binding("g", "start", "Go (run plan)"),
         Binding("s", "stop", "Stop gently"),
         Binding("x", "clear_kill", "Clear kill"),
     ]
+
+    class RunRequested(Message):
+        """Run the Plan tab's plan (after the safety check)."""
+
+    class StopRequested(Message):
+        """End the running work gently (it disarms)."""
+
+    class ClearKillRequested(Message):
+        """Clear the board's latched kill."""
 
     def compose(self) -> ComposeResult:
         yield Static("", id="kill-box")
@@ -42,13 +55,13 @@ class RunPane(Vertical):
 
     # ------------------------------------------------------------------ actions
     def action_start(self) -> None:
-        self.app.start_run()
+        self.post_message(self.RunRequested())
 
     def action_stop(self) -> None:
-        self.app.stop_run()
+        self.post_message(self.StopRequested())
 
     def action_clear_kill(self) -> None:
-        self.app.clear_kill()
+        self.post_message(self.ClearKillRequested())
 
     # ------------------------------------------------------------------ updates from the app
     def show_plan(self, plan) -> None:
@@ -92,24 +105,23 @@ class RunPane(Vertical):
     def note(self, text: str) -> None:
         self.query_one("#run-log", RichLog).write(text)
 
-    def show_kill(self, info: dict | None, more: int = 0) -> None:
+    def mark_killed(self) -> None:
+        """A kill arrived: the loop being worked on (if any) did not finish."""
+        cl = self.query_one("#checklist", Checklist)
+        if self.current and cl.status_of(self.current) in ("running", "tuned", "applied"):
+            cl.set_status(self.current, "killed")
+
+    def show_kill(self, record) -> None:
+        """The kill record (controller.KillRecord) in the red box; None hides it."""
         box = self.query_one("#kill-box", Static)
-        if not info:
+        if record is None:
             box.display = False
             return
         t = Text()
         t.append(" KILLED ", style="bold reverse")
-        t.append(f" by {info.get('origin')}: {info.get('reason')}")
-        if info.get("axis_name") not in (None, "-"):
-            t.append(f"  axis {info.get('axis_name')}")
-        if info.get("threshold"):
-            t.append(f"  value {fmt(info.get('value'))} beyond {fmt(info.get('threshold'))}")
-        elif info.get("value"):
-            t.append(f"  value {fmt(info.get('value'))}")
-        if info.get("text"):
-            t.append(f"  ({info['text']})")
-        if more:
-            t.append(f"  (+{more} later)")
+        t.append(" " + record.text.removeprefix("KILL "))  # the badge already says KILLED
+        if record.later:
+            t.append(f"  (+{record.later} later)")
         t.append("   x: clear the kill when it is safe")
         box.update(t)
         box.display = True
@@ -128,14 +140,15 @@ class RunPane(Vertical):
             t.append(f"ramp steps  {r.get('adjustments', 0)}")
         self.query_one("#relay-figures", Static).update(t)
 
-    def tick(self, stand) -> None:
-        """Redraw the running experiment from the stand's recording buffer."""
-        if stand is None or not self.current or self.stage not in ("noise", "ramp", "relay",
+    def draw(self, buffer) -> None:
+        """Redraw the running experiment from the stand's recording buffer (the app's plot
+        timer)."""
+        if not self.current or self.stage not in ("noise", "ramp", "relay",
                                                                    "verify"):
             return
         axis_name, loop_name = self.current.split(".")
         axis_i, loop_i = int(Axis[axis_name.upper()]), int(Loop[loop_name.upper()])
-        cols = stand.buffer.axis(axis_i)
+        cols = buffer.axis(axis_i)
         sel = cols["loop"] == loop_i
         if not sel.any():
             return

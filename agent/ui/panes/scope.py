@@ -10,6 +10,8 @@ from rich.text import Text
 from textual.app import ComposeResult
 from textual.binding import Binding
 from textual.containers import Grid, Vertical
+from textual.message import Message
+from textual.reactive import reactive
 from textual.widgets import Static
 
 from protocol.messages import Axis, Loop
@@ -53,10 +55,18 @@ def snapshot(buffer_live) -> list:
 
 
 class ScopePane(Vertical):
+    """Posts LevelRequested (l: the next loop level); is given the board's axes and live
+    history (``build``), the level shown (``level``) and the kill limits (``draw``)."""
+
     BINDINGS = [
         Binding("n", "next_axis", "Next axis"),
         Binding("l", "next_level", "Loop level"),
     ]
+
+    level = reactive("rate", init=False)
+
+    class LevelRequested(Message):
+        """Show the next loop level (the board's telemetry is switched to it)."""
 
     def compose(self) -> ComposeResult:
         yield Static("", id="scope-summary")
@@ -65,12 +75,15 @@ class ScopePane(Vertical):
     def on_mount(self) -> None:
         self.axes: list[int] = []
         self.selected = 0
-        self.level = "rate"
+        self.live = None  # the stand's live history (a deque the reader thread appends to)
+        self.limits = None
 
-    def build(self, stand) -> None:
+    def build(self, axes, live) -> None:
+        """The board's axes (names) and its live history; no axes: no board."""
         grid = self.query_one("#scope-grid", Grid)
         grid.remove_children()
-        self.axes = [] if stand is None else [int(Axis[a.upper()]) for a in stand.info.axes]
+        self.axes = [int(Axis[a.upper()]) for a in axes]
+        self.live = live if self.axes else None
         self.selected = 0
         for ax in self.axes:
             grid.mount(TracePlot(Axis(ax).name.lower(), "device time [s]", id=f"scope-{ax}",
@@ -86,21 +99,28 @@ class ScopePane(Vertical):
         if self.axes:
             self.selected = (self.selected + 1) % len(self.axes)
             self._mark_selected()
-            self.tick(self.app.stand, force=True)
+            if self.limits is not None:
+                self.draw(self.limits)
 
     def action_next_level(self) -> None:
-        self.app.cycle_scope_level()
+        self.post_message(self.LevelRequested())
 
-    def tick(self, stand, force: bool = False) -> None:
+    def watch_level(self) -> None:
+        if self.limits is not None:
+            self.draw(self.limits)
+
+    def draw(self, limits) -> None:
+        """Redraw from the live history (the app's plot timer) with the kill limits in force."""
+        self.limits = limits
         summary = self.query_one("#scope-summary", Static)
-        if stand is None:
+        if self.live is None:
             summary.update("No board connected: connect on the Link tab (F2).")
             return
-        live = snapshot(stand.buffer.live)
-        wide = self.app.size.width >= 120
+        live = snapshot(self.live)
+        wide = self.screen.size.width >= 120
         t = Text()
-        t.append(f"level shown: {self.app.scope_level}   ", style="bold")
-        lim = self.app.active_limits()
+        t.append(f"level shown: {self.level}   ", style="bold")
+        lim = limits
         t.append(f"kill limits: angle {fmt(lim.angle_rad * _DEG, 3)} deg, rate "
                  f"{fmt(lim.rate_rad_s * _DEG, 3)} deg/s, heave {fmt(lim.heave_m, 3)} m, climb "
                  f"{fmt(lim.climb_rate_m_s, 3)} m/s, saturation {fmt(lim.saturation_s, 3)} s")
