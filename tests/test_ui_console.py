@@ -564,3 +564,61 @@ def test_rollback_from_the_results_tab_out_of_bounds_writes_nothing(tmp_path):
             await pilot.press("ctrl+q")
 
     asyncio.run(run())
+
+
+def test_the_plan_tab_is_built_from_the_plan_schema(tmp_path):
+    from agent.plan import fields
+
+    async def run():
+        app = demo_app(tmp_path)
+        async with app.run_test(size=(80, 24)) as pilot:
+            await connected(pilot)
+            await pilot.press("f4")
+            pane = app.query_one("#plan")
+            for f in fields("stand") + fields("limits"):
+                widget = app.query_one(f"#plan-{f.name}")  # one input per plan key
+                assert f.name in str(widget.tooltip) and f.expected() in str(widget.tooltip)
+            labels = "\n".join(screen_lines(app))
+            assert "kill: angle [deg]" in labels and "relay target" in labels
+            assert pane.plan is not None and pane.plan.persist is False
+            app.query_one("#plan-persist").value = True  # a switch the tab did not have before
+            await wait_for(pilot, lambda: pane.plan is not None and pane.plan.persist is True,
+                           "the plan to follow the persist switch")
+            assert app.controller.plan is pane.plan, "the controller holds the tab's plan"
+            await pilot.press("ctrl+q")
+
+    asyncio.run(run())
+
+
+def test_one_stand_worker_at_a_time_and_cancelling_it_stops_the_work(tmp_path):
+    import threading
+
+    async def run():
+        app = StandConsole(ConsoleOptions(log_dir=str(tmp_path / "logs")))
+        async with app.run_test(size=(80, 24)) as pilot:
+            ctl = app.controller
+            saw_stop = threading.Event()
+
+            def job(stop) -> None:  # stands in for a workflow polling its stop
+                end = time.monotonic() + WAIT_LIMIT_S
+                while time.monotonic() < end:
+                    if stop.is_set():
+                        saw_stop.set()
+                        return
+                    time.sleep(0.01)
+
+            assert ctl._start("holding the stand", job)
+            await wait_for(pilot, lambda: ctl.busy == "holding the stand", "the worker to run")
+            await wait_for(pilot, lambda: "holding the stand" in screen_lines(app)[0],
+                           "the strip to say what the console is busy with")
+            ctl.connect("/dev/ttyNOWHERE")  # a second action is refused, and says why
+            await wait_for(pilot, lambda: any(
+                n.message.startswith("busy: holding the stand. Wait for it, stop it")
+                for n in app._notifications), "the refusal")
+            assert ctl.stand is None and ctl.busy == "holding the stand"
+            assert not saw_stop.is_set()
+            app.workers.cancel_group(app, "stand")  # what textual does when the app closes
+            await wait_for(pilot, saw_stop.is_set, "the work to see its worker cancelled")
+            await pilot.press("ctrl+q")
+
+    asyncio.run(run())

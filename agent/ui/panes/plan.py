@@ -1,33 +1,33 @@
-"""Plan tab: which loops, which controller and rule, the robustness target, the relay target and
-the kill limits. Every change is checked at once by ``agent.plan.plan_from_dict`` (the same check
-the CLI applies to a plan file) and against the connected board; the message says what is wrong
-before anything can be armed."""
+"""Plan tab: the loops to tune and every [stand] and [limits] key of a plan file, one input per
+row of the plan schema (``agent.plan.SCHEMA``: its label, unit, help, range and default); the
+board's own kill settings fill in the defaults where it has them. Every change is checked at once
+by ``agent.plan.plan_from_dict`` (the check the CLI applies to a plan file) and against the
+connected board's loops; the message says what is wrong before anything can be armed."""
 
 from __future__ import annotations
-
-import math
 
 from textual.app import ComposeResult
 from textual.containers import Horizontal, VerticalScroll
 from textual.message import Message
 from textual.widgets import Checkbox, Input, Label, Select, SelectionList, Static
 
-from agent.plan import (CONTROLLERS, LoopPlan, Plan, PlanError, check_against_device,
-                        default_plan, in_cascade_order, known_rules, plan_from_dict)
+from agent.plan import (Field, LoopPlan, Plan, PlanError, check_against_device, default_plan,
+                        fields, in_cascade_order, plan_from_dict)
 
-# (key, label, default text) — operator units, the same keys as a plan file
-STAND_FIELDS = (("ms_target", "Ms target (robustness, 1.1-2.5)", "1.4"),
-                ("relay_target", "relay target (fraction of kill limit)", "0.3"))
-LIMIT_FIELDS = (("angle_deg", "kill: angle [deg]", "30"),
-                ("rate_deg_s", "kill: rate [deg/s]", "400"),
-                ("heave_m", "kill: heave excursion [m]", "0.25"),
-                ("climb_rate_m_s", "kill: climb rate [m/s]", "1.0"),
-                ("saturation_s", "kill: output saturated [s]", "1.5"),
-                ("max_experiment_s", "longest experiment [s]", "120"))
+SECTIONS = ("stand", "limits")  # the [[loop]] entries are the loop list
 
 
-def _rules() -> list[str]:
-    return ["recommended", *known_rules()]
+def form_fields() -> tuple[Field, ...]:
+    """The schema rows the tab shows, in schema order."""
+    return tuple(f for sec in SECTIONS for f in fields(sec))
+
+
+def label_of(f: Field) -> str:
+    return f.label + (f" [{f.unit}]" if f.unit else "")
+
+
+def tooltip_of(f: Field) -> str:
+    return f"{f.name}: {f.help}. Expected: {f.expected()}."
 
 
 def _value(text: str):
@@ -56,21 +56,26 @@ class PlanPane(VerticalScroll):
                      id="plan-status", classes="message")
         yield Label("Loops to tune (Space toggles; run in cascade order):", classes="section")
         yield SelectionList[str](id="plan-loops", compact=True)
-        with Horizontal(classes="plan-row"):
-            yield Label("controller", classes="plan-label")
-            yield Select([(c.upper(), c) for c in CONTROLLERS], value="pid", allow_blank=False,
-                         id="plan-controller", compact=True)
-        with Horizontal(classes="plan-row"):
-            yield Label("rule / design", classes="plan-label")
-            yield Select([(r, r) for r in _rules()], value="recommended", allow_blank=False,
-                         id="plan-rule", compact=True)
-        for key, label, default in STAND_FIELDS + LIMIT_FIELDS:
+        for f in form_fields():
+            if f.type is bool:
+                continue  # the switches share one row below
             with Horizontal(classes="plan-row"):
-                yield Label(label, classes="plan-label", markup=False)
-                yield Input(default, id=f"plan-{key}", compact=True, classes="plan-input")
+                yield Label(label_of(f), classes="plan-label", markup=False)
+                if f.type is str:
+                    widget = Select([(c.upper() if f.name == "controller" else c, c)
+                                     for c in f.allowed()], value=f.default, allow_blank=False,
+                                    id=f"plan-{f.name}", compact=True, classes="plan-select")
+                else:
+                    widget = Input(f"{f.default:g}", id=f"plan-{f.name}", compact=True,
+                                   classes="plan-input")
+                widget.tooltip = tooltip_of(f)
+                yield widget
         with Horizontal(classes="plan-row"):
-            yield Checkbox("write the gains", True, id="plan-apply", compact=True)
-            yield Checkbox("verify with a step", True, id="plan-verify", compact=True)
+            for f in form_fields():
+                if f.type is bool:
+                    box = Checkbox(f.label, f.default, id=f"plan-{f.name}", compact=True)
+                    box.tooltip = tooltip_of(f)
+                    yield box
 
     def on_mount(self) -> None:
         self.plan: Plan | None = None
@@ -96,13 +101,12 @@ class PlanPane(VerticalScroll):
         """The same defaults the CLI uses without a plan file: the board's own kill settings
         where it has them (shown in operator units)."""
         dp = default_plan(axes, values)
-        lim = dp.limits
-        shown = {"angle_deg": math.degrees(lim.angle_rad),
-                 "rate_deg_s": math.degrees(lim.rate_rad_s), "heave_m": lim.heave_m,
-                 "climb_rate_m_s": lim.climb_rate_m_s, "saturation_s": lim.saturation_s,
-                 "max_experiment_s": dp.max_experiment_s, "relay_target": dp.relay_target}
-        for key, value in shown.items():
-            self.query_one(f"#plan-{key}", Input).value = f"{value:.6g}"
+        for f in form_fields():
+            if f.type is not float or f.per_loop:
+                continue
+            owner = dp.limits if f.owner == "limits" else dp
+            shown = getattr(owner, f.key_attr) / f.si_scale
+            self.query_one(f"#plan-{f.name}", Input).value = f"{shown:.6g}"
 
     def select_loops(self, keys) -> None:
         sl = self.query_one("#plan-loops", SelectionList)
@@ -117,19 +121,15 @@ class PlanPane(VerticalScroll):
 
     # ------------------------------------------------------------------ checking
     def plan_dict(self) -> dict:
-        stand = {"controller": self.query_one("#plan-controller", Select).value,
-                 "rule": self.query_one("#plan-rule", Select).value,
-                 "apply": self.query_one("#plan-apply", Checkbox).value,
-                 "verify": self.query_one("#plan-verify", Checkbox).value}
-        for key, _, _ in STAND_FIELDS:
-            stand[key] = _value(self.query_one(f"#plan-{key}", Input).value)
-        limits = {key: _value(self.query_one(f"#plan-{key}", Input).value)
-                  for key, _, _ in LIMIT_FIELDS}
-        loops = []
-        for key in self.query_one("#plan-loops", SelectionList).selected:
-            axis, loop = key.split(".")
-            loops.append({"axis": axis, "loop": loop})
-        return {"stand": stand, "limits": limits, "loop": loops}
+        """The fields as a plan file's table (numbers as numbers, other text as typed)."""
+        data: dict = {sec: {} for sec in SECTIONS}
+        for f in form_fields():
+            widget = self.query_one(f"#plan-{f.name}")
+            value = widget.value
+            data[f.section][f.name] = _value(value) if f.type is float else value
+        data["loop"] = [dict(zip(("axis", "loop"), key.split(".")))
+                        for key in self.query_one("#plan-loops", SelectionList).selected]
+        return data
 
     def validate_plan(self) -> Plan | None:
         status = self.query_one("#plan-status", Static)
