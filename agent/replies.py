@@ -33,11 +33,24 @@ DAMAGE_KINDS = (("bad_crc", "CRC errors"), ("bad_cobs", "broken framing (COBS)")
 
 
 def answers(request: Any, reply: Any) -> bool:
-    """Whether ``reply`` (a decoded message with the request's seq and FLAG_REPLY) is an answer
-    to ``request`` by the message table: its type is among the request's ``replies``, an Ack or
-    Refuse names the request's type id, echoed ids agree; a Refuse answers anything but a Kill.
-    A reply in another protocol major cannot be read further and is handed up (the caller
-    refuses the board)."""
+    """Whether a reply answers a request, by the message table.
+
+    Parameters
+    ----------
+    request : a host message of protocol.messages
+        The request waiting with the reply's seq.
+    reply : a decoded message, ForeignVersion or UnknownMessage
+        A frame that carried the request's seq and FLAG_REPLY.
+
+    Returns
+    -------
+    bool
+        True when the reply's type is among the request's ``replies`` and the ids it echoes
+        (setting id, table index) agree; for an Ack, when it names the request's type id and
+        the request is answered with Ack; for a Refuse, when it names the request's type id
+        and the request is not a Kill (never refused, SPEC 11.1). A reply in another protocol
+        major cannot be read further and is True (the session refuses that board).
+    """
     if isinstance(reply, ForeignVersion):
         return True
     spec = m.spec_of(request)
@@ -52,7 +65,17 @@ def answers(request: Any, reply: Any) -> bool:
 
 
 def kind_of(msg: Any) -> str:
-    """A reply's kind for people: "Ack of 0x12", "SettingValue", "type 0x7f"."""
+    """A reply's kind for people.
+
+    Parameters
+    ----------
+    msg : a decoded message or UnknownMessage
+
+    Returns
+    -------
+    str
+        "Ack of 0x12", "Refuse of 0x14", "SettingValue", "type 0x7f", ...
+    """
     if isinstance(msg, m.Ack):
         return f"Ack of 0x{msg.acked_type:02x}"
     if isinstance(msg, m.Refuse):
@@ -63,8 +86,19 @@ def kind_of(msg: Any) -> str:
 
 
 def describe_kill_event(ev: Event) -> str:
-    """A board's KILL_TRIPPED event in words: "its watchdog (no frame from the host within
-    watchdog_s)", "angle_limit: ...", ..."""
+    """A board's KILL_TRIPPED event in words.
+
+    Parameters
+    ----------
+    ev : Event
+        The board's KILL_TRIPPED event.
+
+    Returns
+    -------
+    str
+        For the watchdog, what it means for the link; else the reason's name and the board's
+        text ("angle_limit (angle beyond ...)").
+    """
     if ev.reason == KillReason.WATCHDOG:
         return ("its watchdog: no frame from the host reached it within its watchdog_s, so the "
                 "link stalled or lost everything for that long")
@@ -134,9 +168,21 @@ class RequestReport:
 
 
 def loss_reason(op: str, exc: BaseException) -> str:
-    """One line for a failed read or write of the port: ``op`` ("read" or "write"), what the
-    failure means, and the system's own words once (pyserial often prefixes them with
-    "read failed: " already)."""
+    """One line for a failed read or write of the port.
+
+    Parameters
+    ----------
+    op : str
+        "read" or "write".
+    exc : BaseException
+        What the port raised (pyserial often prefixes its text with "read failed: " already).
+
+    Returns
+    -------
+    str
+        "<op> failed: <what it means> [<the system's words, once>]", or "<op> failed: <the
+        system's words>" for a failure without a known meaning.
+    """
     text = str(exc).strip()
     for prefix in ("read failed: ", "write failed: "):
         while text.startswith(prefix):

@@ -586,3 +586,33 @@ def test_a_lost_link_is_one_clear_line(exc, words):
         assert str(err.value) == f"the link to fake-peer is lost ({reason})"
     finally:
         link.close()
+
+
+# ---------------------------------------------------------------- the matching rule, by table
+
+@pytest.mark.parametrize("spec", [s for s in m.MESSAGES.values() if s.sender == "host"
+                                  and s.cls is not m.Keepalive], ids=lambda s: s.name)
+def test_every_request_is_answered_only_by_the_replies_its_table_entry_lists(spec):
+    from agent.replies import answers
+    req = spec.cls()  # every host message has defaults for all its fields
+    replies = [s for s in m.MESSAGES.values() if s.sender == "device"
+               and s.cls not in (m.Telemetry, m.Event, m.Ack, m.Refuse)]
+    for rs in replies:
+        assert answers(req, rs.cls()) == (rs.name in spec.replies), (spec.name, rs.name)
+    tid = spec.type_id
+    assert answers(req, m.Ack(acked_type=tid)) == ("ack" in spec.replies)
+    assert not answers(req, m.Ack(acked_type=(tid + 1) & 0xFF))
+    assert answers(req, m.Refuse(refused_type=tid)) == (spec.cls is not m.Kill)
+    assert not answers(req, m.Refuse(refused_type=(tid + 1) & 0xFF))
+    assert not answers(req, m.UnknownMessage(0x7F, b""))
+    assert answers(req, ForeignVersion(2, 0))
+
+
+def test_an_echoed_setting_id_or_index_must_agree():
+    from agent.replies import answers
+    assert answers(m.SettingRead(setting_id=5), m.SettingValue(setting_id=5, value=1.0))
+    assert not answers(m.SettingRead(setting_id=5), m.SettingValue(setting_id=6, value=1.0))
+    # the value of a write's reply is what the board stored: it may differ (rounding)
+    assert answers(m.SettingWrite(setting_id=5, value=0.1), m.SettingValue(setting_id=5, value=0.5))
+    assert answers(m.SettingDescribe(index=2), m.SettingInfo(index=2))
+    assert not answers(m.SettingDescribe(index=2), m.SettingInfo(index=3))
