@@ -17,6 +17,7 @@ One module per idea:
 ``design``     IAE-optimal PI/PID/PD under a maximum-sensitivity constraint
 ``tuning``     candidates with margins, predictions and discrete gains; the recommendation
 ``cascade``    inner/outer bandwidth ratio check
+``supervisor`` the relay supervisor: amplitude ramp, bias centring, convergence, precision
 
 No I/O, no threads, no clock.
 """
@@ -34,17 +35,22 @@ from .predict import (
 )
 from .records import RecordError, RelayRecord
 from .simulate import simulate_relay
+from .supervisor import Action, Decision, Reason, RelaySupervisor
 from .tuning import Candidate, TuningResult, tune
 from .ultimate import UltimatePoint
 
 __all__ = [
+    "Action",
     "Candidate",
     "CascadeCheck",
     "CycleStats",
+    "Decision",
     "Identification",
     "Model",
+    "Reason",
     "RecordError",
     "RelayRecord",
+    "RelaySupervisor",
     "StepMetrics",
     "StepPrediction",
     "TuningResult",

@@ -20,7 +20,7 @@ from protocol.timing import sampling_delay_s
 from ..errors import WorkflowError
 from ..logbook.records import MAX_BRIDGED_FRACTION, MAX_GAP_TICKS, AnalysisInput, bridge_gaps
 from ..plan import LoopPlan, Plan
-from ..relayramp import RelaySupervisor
+from ..analysis.supervisor import RelaySupervisor
 from ..stand import Stand
 from .experiment import Experiment, ids
 from .results import Progress, ProgressFn, Stage, quiet

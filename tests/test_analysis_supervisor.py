@@ -5,7 +5,7 @@ import math
 import numpy as np
 import pytest
 
-from agent.relayramp import RANGE3_P95, RelaySupervisor
+from agent.analysis.supervisor import RANGE3_P95, Action, Reason, RelaySupervisor
 
 
 def run_loop(sup, K=2.0, T=0.05, L=0.01, load=0.0, integrating=False, dt=0.001, t_max=5.0,
@@ -48,7 +48,7 @@ def run_loop(sup, K=2.0, T=0.05, L=0.01, load=0.0, integrating=False, dt=0.001, 
             dec = sup.decide(np.array(t), np.array(y), np.array(u), np.array(r))
             if (dec.amplitude, dec.bias) != (pending[-1][1:] if pending else applied):
                 pending.append((k + 1 + apply_lag, dec.amplitude, dec.bias))
-            if dec.action in ("converged", "fail"):
+            if dec.action in (Action.CONVERGED, Action.FAIL):
                 return dec, np.array(t), np.array(y)
     return None, np.array(t), np.array(y)
 
@@ -58,7 +58,7 @@ def test_ramp_reaches_target_amplitude_and_converges_within_four_periods():
     # Controllers, 2nd ed.): the target is reached when d = a_target / (K (1 - e^{-L/T})).
     sup = RelaySupervisor(amplitude=0.02, bias=0.0, target=0.1, ceiling=1.0)
     dec, t, y = run_loop(sup)
-    assert dec is not None and dec.action == "converged", dec
+    assert dec is not None and dec.action is Action.CONVERGED, dec
     assert dec.periods_after_ramp <= 4
     assert abs(dec.amplitude_seen - 0.1) <= 0.3 * 0.1
     d_exact = 0.1 / (2.0 * (1 - math.exp(-0.01 / 0.05)))
@@ -81,7 +81,7 @@ def test_bias_is_centred_on_the_trim_of_an_integrating_loop_with_load():
     # (common practice, no source: the trim is the input that cancels the load)
     sup = RelaySupervisor(amplitude=0.3, bias=0.0, target=0.02, ceiling=1.0)
     dec, t, y = run_loop(sup, K=1.0, L=0.02, load=-0.2, integrating=True, t_max=20.0)
-    assert dec is not None and dec.action == "converged", dec
+    assert dec is not None and dec.action is Action.CONVERGED, dec
     assert dec.bias == pytest.approx(0.2, abs=0.02)
 
 
@@ -89,15 +89,15 @@ def test_amplitude_stays_below_ceiling():
     sup = RelaySupervisor(amplitude=0.01, bias=0.0, target=10.0, ceiling=0.05)
     dec, _, y = run_loop(sup)
     assert dec.amplitude <= 0.05 + 1e-12
-    assert dec.action == "converged"  # at the ceiling the oscillation is accepted as it is
+    assert dec.action is Action.CONVERGED  # at the ceiling the oscillation is accepted as it is
 
 
 def test_no_oscillation_is_reported():
     sup = RelaySupervisor(amplitude=0.1, bias=0.0, target=0.1, ceiling=1.0, no_switch_s=0.5)
     # a plant with zero gain never crosses the setpoint again: the relay stays high
     dec, _, _ = run_loop(sup, K=0.0, t_max=2.0)
-    assert dec is not None and dec.action == "fail"
-    assert "did not switch" in dec.reason
+    assert dec is not None and dec.action is Action.FAIL
+    assert "did not switch" in dec.reason and dec.cause is Reason.NO_SWITCHING
 
 
 @pytest.mark.parametrize("load", [0.0, -0.1, 0.15])
@@ -106,7 +106,7 @@ def test_bias_converges_on_a_loop_with_static_gain(load):
     # load, bias = -load (common practice, no source: the trim cancels the load).
     sup = RelaySupervisor(amplitude=0.3, bias=0.0, target=0.1, ceiling=0.3)
     dec, t, y = run_loop(sup, K=2.0, T=0.5, L=0.2, load=load, t_max=60.0)
-    assert dec is not None and dec.action == "converged", dec
+    assert dec is not None and dec.action is Action.CONVERGED, dec
     assert dec.bias == pytest.approx(-load, abs=0.06 * 0.3 + 1e-9)
     assert sup.bias_moves <= sup.max_bias_moves
 
@@ -116,12 +116,13 @@ def test_noisy_stationary_loop_converges_within_four_periods(seed):
     # Noise of 8 % of the oscillation (the yaw loops of the invented gimbal see 15 %): the
     # periods scatter by at least 0.23 sigma/a, beyond the fixed 2 %/5 % tolerances, but the
     # limit cycle is stationary after the ramp (own derivation and measurement, see
-    # agent/relayramp.py; the crossing-time jitter sigma/slope is common practice, no source).
+    # agent/analysis/README.md; the crossing-time jitter sigma/slope is common practice, no
+    # source).
     sigma = 0.008
     sup = RelaySupervisor(amplitude=0.3, bias=0.0, target=0.1, ceiling=0.3, noise_std=sigma)
     dec, _, _ = run_loop(sup, hysteresis=3 * sigma, noise=sigma, seed=seed)
-    assert dec is not None and dec.action == "converged", dec
-    assert dec.reason == ""  # stationary, not the give-up verdict
+    assert dec is not None and dec.action is Action.CONVERGED, dec
+    assert dec.reason == "" and dec.cause is Reason.NONE  # stationary, not the give-up verdict
     assert dec.periods_after_ramp <= 4
 
 
@@ -131,7 +132,7 @@ def test_noise_tolerance_widens_only_with_the_noise():
     sup.noise_std = 0.01
     # the 95th percentile of the range of three normal samples, 3.31 deviations, from the
     # studentized range with infinite degrees of freedom (scipy.stats as the reference), times
-    # the measured scatter of a stationary cycle (0.65 and 1.3 sigma/a, agent/relayramp.py)
+    # the measured scatter of a stationary cycle (0.65 and 1.3 sigma/a, agent/analysis/README.md)
     from scipy.stats import studentized_range
     q95 = studentized_range.ppf(0.95, 3, 1e6)
     assert RANGE3_P95 == pytest.approx(q95, abs=0.01)
@@ -147,19 +148,19 @@ def test_drift_beyond_the_noise_keeps_the_relay_running():
     sigma = 0.002
     sup = RelaySupervisor(amplitude=0.3, bias=0.0, target=10.0, ceiling=0.3, noise_std=sigma)
     dec, _, _ = run_loop(sup, hysteresis=3 * sigma, noise=sigma, drift=2.0, t_max=5.0)
-    assert dec is not None and dec.action == "converged"
+    assert dec is not None and dec.action is Action.CONVERGED
     assert dec.periods_after_ramp == sup.max_periods_after_ramp
-    assert "not stationary" in dec.reason
+    assert "not stationary" in dec.reason and dec.cause is Reason.NOT_STATIONARY
 
 
 def test_noisy_loop_records_more_periods_for_precision_after_converging():
-    # sigma/a = 0.08: the ultimate gain scatters by about 0.75 (sigma/a)/sqrt(n) (own measurement,
-    # agent/relayramp.py), so 0.5 % needs 144 periods; the cap of 60 applies. Convergence itself
-    # is still reported after at most four periods.
+    # sigma/a = 0.08: the ultimate gain scatters by about 0.75 (sigma/a)/sqrt(n) (own
+    # measurement, agent/analysis/README.md), so 0.5 % needs 144 periods; the cap of 60 applies.
+    # Convergence itself is still reported after at most four periods.
     sigma = 0.008
     sup = RelaySupervisor(amplitude=0.3, bias=0.0, target=0.1, ceiling=0.3, noise_std=sigma)
     dec, t, _ = run_loop(sup, hysteresis=3 * sigma, noise=sigma, seed=1, t_max=5.0)
-    assert dec is not None and dec.action == "converged" and dec.reason == ""
+    assert dec is not None and dec.action is Action.CONVERGED and dec.reason == ""
     assert dec.periods_after_ramp <= 4
     assert dec.periods_recorded == sup.max_record_periods == 60  # exactly: the first 60
     a, b = dec.window
@@ -172,7 +173,7 @@ def test_precision_recording_stops_at_its_time_budget():
                           max_record_s=0.5)
     dec, t, _ = run_loop(sup, hysteresis=3 * sigma, noise=sigma, seed=1)
     a, b = dec.window
-    assert dec.action == "converged" and 0.5 - dec.period_s <= t[b] - t[a] <= 0.5
+    assert dec.action is Action.CONVERGED and 0.5 - dec.period_s <= t[b] - t[a] <= 0.5
     assert dec.periods_recorded < 20
 
 
@@ -201,7 +202,27 @@ def test_periods_count_from_when_the_board_applied_the_change():
     sup = RelaySupervisor(amplitude=0.02, bias=0.0, target=0.1, ceiling=1.0)
     out = []
     dec, t, _ = run_loop(sup, apply_lag=60, record=out)
-    assert dec is not None and dec.action == "converged" and sup.adjustments >= 1
+    assert dec is not None and dec.action is Action.CONVERGED and sup.adjustments >= 1
     a, b = dec.window
     levels = np.unique(np.round(np.abs(np.array(out[a:b + 1])), 9))
     assert levels == pytest.approx([dec.amplitude]), levels
+
+
+def test_actions_and_reasons_are_typed_and_compare_as_their_words():
+    # the ramp of the first test adjusts the amplitude at least once, waits, then converges
+    sup = RelaySupervisor(amplitude=0.02, bias=0.0, target=0.1, ceiling=1.0)
+    seen = []
+    orig = sup.decide
+
+    def spy(*a):
+        d = orig(*a)
+        seen.append(d)
+        return d
+
+    sup.decide = spy
+    dec, _, _ = run_loop(sup)
+    assert all(isinstance(d.action, Action) and isinstance(d.cause, Reason) for d in seen)
+    adjusts = [d for d in seen if d.action is Action.ADJUST]
+    assert adjusts and all(d.cause is Reason.AMPLITUDE and d.reason == "amplitude"
+                           for d in adjusts)
+    assert dec.action == "converged" and Action.WAIT == "wait"  # StrEnum: the old strings
