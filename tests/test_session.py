@@ -274,3 +274,20 @@ def test_experiment_tags_are_never_zero(peer_session):
     session, _ = peer_session(scripted(None))
     session._tag = 65534
     assert [session.next_tag() for _ in range(3)] == [65535, 1, 2]
+
+
+def test_a_latched_kill_refusal_names_the_kill_the_board_reported(peer_session):
+    watchdog = m.Event(time_us=1, kind=int(m.EventKind.KILL_TRIPPED),
+                       state=int(DeviceState.KILLED), reason=int(m.KillReason.WATCHDOG),
+                       axis=255, value=1.3, threshold=1.0, text="keepalive watchdog expired")
+    latched = m.Refuse(refused_type=0x30, code=int(RefuseCode.KILL_LATCHED), detail=3,
+                       text="a kill is latched")
+    session, peer = peer_session(scripted(hello_reply(), ExperimentStart=latched))
+    session.connect()
+    peer.push(codec.encode(watchdog, 1))
+    assert wait_for(lambda: session.link.last_kill is not None)
+    with pytest.raises(DeviceRefused, match=r"refused experiment start: KILL_LATCHED — a kill is "
+                       r"latched \(the board killed: its watchdog: no frame from the host "
+                       r"reached it") as err:
+        session.start_experiment(**HOLD)
+    assert err.value.code == RefuseCode.KILL_LATCHED and session.state == DeviceState.KILLED
