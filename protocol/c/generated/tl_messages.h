@@ -341,8 +341,8 @@ typedef struct {
 
 /* 0x22 ArmConfirm (host -> device): Second half of the interlock: ``response`` must equal the
  * bitwise complement of the token (token XOR 0xFFFFFFFF) and ``operator_confirmed`` must be 1
- * (the operator accepted the safety cautions). The device also requires a fresh keepalive and no
- * latched kill.
+ * (the operator accepted the safety cautions). The device also requires a host frame within
+ * watchdog_s before it and no latched kill.
  */
 typedef struct {
     uint32_t response; /* token XOR 0xFFFFFFFF */
@@ -360,7 +360,8 @@ typedef struct {
  * Inner loops stay closed on their current gains. RELAY: the loop's output becomes bias +/-
  * amplitude, switching when the error (setpoint - measurement) leaves the band +/- hysteresis.
  * STEP: the loop holds ``setpoint`` until ``step_at_s``, then ``setpoint + amplitude``. HOLD: the
- * loop holds ``setpoint``. A threshold of 0 means "use the device's kill.* setting".
+ * loop holds ``setpoint``. A threshold of 0 means "use the device's kill.* setting"; one above
+ * that setting is capped at it.
  */
 typedef struct {
     uint16_t tag; /* host-chosen experiment id, echoed in events */
@@ -379,8 +380,8 @@ typedef struct {
     float kill_saturation_s; /* kill if the actuator stays saturated longer [s] */
 } tl_experiment_start;
 
-/* 0x31 ExperimentStop (host -> device): End the running experiment (the device returns to ARMED).
- * Acknowledged in any state.
+/* 0x31 ExperimentStop (host -> device): End the running experiment if ``tag`` is its tag or 0
+ * (the device returns to ARMED); another tag changes nothing. Acknowledged in any state.
  */
 typedef struct {
     uint16_t tag; /* experiment id */
@@ -397,7 +398,7 @@ typedef struct {
 } tl_experiment_adjust;
 
 /* 0x40 Kill (host -> device): Kill now: outputs to zero in the same tick, latched until
- * KillClear. Accepted in every state, never refused.
+ * KillClear. Accepted in every state and every major version, never refused.
  */
 typedef struct {
     uint8_t reason; /* KillReason */
@@ -411,9 +412,9 @@ typedef struct {
     uint8_t no_fields_; /* empty payload; C99 has no empty struct */
 } tl_kill_clear;
 
-/* 0x50 TelemetryConfig (host -> device): Choose telemetry: rate (0 = off, at most the loop rate),
- * which axes, and which loop level's signals to report for axes that are not running an
- * experiment (the experiment's axis reports the experiment's level).
+/* 0x50 TelemetryConfig (host -> device): Choose telemetry: rate (0 = off, at most the board's
+ * telemetry limit), which axes, and which loop level's signals to report for axes that are not
+ * running an experiment (the experiment's axis reports the experiment's level).
  */
 typedef struct {
     uint16_t rate_hz; /* samples per second of device time [Hz] */
@@ -435,7 +436,7 @@ typedef struct {
     uint64_t time_us; /* device time [us] */
     uint8_t kind; /* EventKind */
     uint8_t state; /* device state after the event (DeviceState) */
-    uint8_t reason; /* KillReason or FinishReason, per kind, else 0 */
+    uint8_t reason; /* KillReason, FinishReason or ExperimentKind, per kind, else 0 */
     uint8_t axis; /* Axis concerned, or 255 */
     float value; /* offending value (kill), else 0 */
     float threshold; /* limit crossed (kill), else 0 */
