@@ -20,7 +20,8 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .cycles import CycleStats, detect_cycles
-from .models import INTEGRATING_KINDS, MODEL_KINDS, Model, fit_models, select_model
+from .families import FAMILIES
+from .models import Model, fit_models, select_model
 from .records import RecordError, RelayRecord, validate_record
 from .ultimate import (
     UltimatePoint,
@@ -217,8 +218,8 @@ def identify(record: RelayRecord) -> Identification:
     # --- models
     noise_mad = _noise_mad(y)
     # the host's prior knowledge of the loop's physics: only families of that kind are fitted
-    kinds = MODEL_KINDS if record.integrating is None else tuple(
-        k for k in MODEL_KINDS if (k in INTEGRATING_KINDS) == bool(record.integrating))
+    kinds = tuple(k for k, f in FAMILIES.items()
+                  if record.integrating is None or f.integrating == bool(record.integrating))
     models = fit_models(dt, u, y, per, cyc.amplitude, kinds=kinds, u_ref=float(record.bias),
                         noise_std=noise_mad, at_rest=record.at_rest)
     model = select_model(models, len(y), cyc.amplitude, noise_std=noise_mad)

@@ -1,54 +1,45 @@
-"""Low-order process models fitted to the whole relay waveform.
+"""Low-order process models fitted to the whole relay waveform, and the choice among them.
 
-Seven model families, all with a dead time ``L``; ``T2(s) = T^2 s^2 + 2 zeta T s + 1`` is a
-second-order factor with real or complex poles:
-
-* ``fopdt``    ``K exp(-Ls) / (T s + 1)``
-* ``sopdt``    ``K exp(-Ls) / T2(s)``
-* ``ipdt``     ``K exp(-Ls) / (s (T s + 1))``  (integrator plus lag plus dead time)
-* ``topdt``    ``K exp(-Ls) / (T2(s) (T3 s + 1))``  (third order: higher-order lags)
-* ``ztopdt``   ``K (Tz s + 1) exp(-Ls) / (T2(s) (T3 s + 1))``  (``Tz < 0``: a right half-plane
-  zero, inverse response)
-* ``isopdt``   ``K exp(-Ls) / (s T2(s))``  (integrator plus second order)
-* ``izsopdt``  ``K (Tz s + 1) exp(-Ls) / (s T2(s))``  (e.g. an angle loop around a rate loop
-  closed with a PI: the integral action leaves a zero)
-
-The richer families start from the fitted simpler ones they extend (``SEEDED_FROM``) and are
-only fitted when the family they extend does not already reproduce the record down to the
-measurement noise. Each integrating family is also the limit of a stable one with one more lag
-(``K / s = lim K T / (T s + 1)``, ``T`` far beyond the record; ``STABLE_LIMIT``): the stable
-family can reproduce whatever its limit does, is searched again from the integrating fit when
-its own search ended above it, and must fit clearly better to be chosen over it, since a
-record shorter than the slow lag shows no static gain.
+The families (what each is, its parameters with units, how it is built and searched, how the
+families contain each other) are the table :data:`agent.analysis.families.FAMILIES`; this
+module fits them and chooses one.
 
 Fitting (output error, whole waveform)
 --------------------------------------
 For candidate time constants and dead time the recorded relay output ``u`` is passed through
 the model's exact zero-order-hold equivalent (:mod:`agent.analysis.lti`), which is exactly what
 the relay loop did, and the waveform is least-squared against the measured ``y``. The gain, the
-output offset, the unknown initial state (the free modes of the model) and, for the integrating
+output offset, the unknown initial state (the free modes of the model) and, for an integrating
 model, an input offset (the trim) enter linearly and are solved by linear least squares inside
 the residual (variable projection), so :func:`scipy.optimize.least_squares` searches only the
 time constants and the dead time. The first ~0.6 period is left out so that the input history
 seen through the dead time is always recorded.
 
-Long records (more than 14 periods, as the relay records on noisy loops): each family is first
-fitted on the last ten periods, whose result starts the search on the whole record (the coarse
-grid alone can rank a poorer basin first), and slow trends (gusts, drift; slower than an eighth
-of the oscillation frequency) are projected out with half-cosine columns. A caller that knows
-whether the record starts at rest says so (``RelayRecord.at_rest``): the online workflow's
-windows start mid-oscillation, and a wrong at-rest assumption biases the gain while hardly
-raising the residual.
+A richer family starts from the fitted simpler ones it extends (``seeded_from``) and is only
+fitted when no family it contains already reproduces the record down to the measurement noise
+(the choice could never prefer it). A family never fits worse than a family it contains: when
+its search ends above one, it is searched again from that fit. In particular each integrating
+family is the limit of a stable one with one more lag (``stable_limit``), whose starting points
+otherwise never look at a lag far slower than the oscillation.
+
+Long records (more than ``LONG_RECORD_PERIODS`` periods, as the relay records on noisy loops):
+each family is first fitted on the last ten periods, whose result starts the search on the
+whole record (the coarse grid alone can rank a poorer basin first), and slow trends (gusts,
+drift; slower than an eighth of the oscillation frequency) are projected out with half-cosine
+columns. A caller that knows whether the record starts at rest says so
+(``RelayRecord.at_rest``): the online workflow's windows start mid-oscillation, and a wrong
+at-rest assumption biases the gain while hardly raising the residual.
+
+What a record can tell: a window of a stationary symmetric relay oscillation pins the response
+near the odd harmonics of the oscillation only; the static gain (and whether the loop
+integrates at all) shows in the start from rest or in a change of the relay's mean output.
 
 Model choice uses the Bayesian information criterion on the residual (with a floor so that
 noise-free fits do not split hairs) and the normalized time delay ``tau = L / (L + T)``
 (Berner 2017): with ``tau`` small the process looks integrating, with ``tau`` large higher-order
 lags cannot be told from dead time, so the simpler model is kept unless the richer one fits
 clearly better; "better" is judged on the misfit beyond the measurement noise (see
-:func:`select_model`).
-
-Accuracy and cost are recorded by tests/bench/identify.py (ultimate point within 1 % on every
-bench plant at 1 % noise; about 0.5-1 s CPU per 9000-sample record).
+:func:`select_model`). Accuracy and cost: tests/bench/identify.py.
 """
 
 from __future__ import annotations
@@ -58,24 +49,17 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 from scipy import optimize, signal
 
+from .families import FAMILIES, Family, family
 from .lti import freq_response, phase_crossover, zoh_discretize
 
-__all__ = ["MODEL_KINDS", "Model", "fit_model", "fit_models", "select_model"]
+__all__ = ["FAMILIES", "MODEL_KINDS", "Family", "Model", "fit_model", "fit_models",
+           "select_model"]
 
-MODEL_KINDS = ("fopdt", "sopdt", "ipdt", "topdt", "isopdt", "ztopdt", "izsopdt")
-INTEGRATING_KINDS = ("ipdt", "isopdt", "izsopdt")
-N_PARAMS = {"fopdt": 3, "sopdt": 4, "ipdt": 3, "topdt": 5, "isopdt": 4, "ztopdt": 6, "izsopdt": 5}
-# integrating family -> the stable family that contains it as the limit of a slow lag:
-# K / s = lim K T / (T s + 1) for T -> infinity, so over any record much shorter than T a stable
-# family with one more lag reproduces everything its integrating limit does
-STABLE_LIMIT = {"ipdt": "sopdt", "isopdt": "topdt", "izsopdt": "ztopdt"}
-# richer family -> the simpler families it contains, by an extra factor or as a limit
-# (selection asks the richer one to earn its extra parameters against each of them)
-NESTED_IN = {"sopdt": ("fopdt", "ipdt"), "topdt": ("sopdt", "isopdt"), "isopdt": ("ipdt",),
-             "ztopdt": ("topdt", "izsopdt"), "izsopdt": ("isopdt",)}
-# richer family -> the fitted family its starting points come from
-SEEDED_FROM = {"topdt": ("sopdt",), "isopdt": ("ipdt",), "ztopdt": ("topdt",),
-               "izsopdt": ("isopdt", "ztopdt")}
+MODEL_KINDS = tuple(FAMILIES)
+INTEGRATING_KINDS = tuple(k for k, f in FAMILIES.items() if f.integrating)
+STABLE_LIMIT = {k: f.stable_limit for k, f in FAMILIES.items() if f.stable_limit}
+NESTED_IN = {k: f.nested_in for k, f in FAMILIES.items() if f.nested_in}
+SEEDED_FROM = {k: f.seeded_from for k, f in FAMILIES.items() if f.seeded_from}
 
 
 @dataclass(frozen=True)
@@ -98,34 +82,25 @@ class Model:
     basis: str = "record"
     extras: dict[str, float] = field(default_factory=dict)
 
+    @property
+    def family(self) -> Family:
+        """The record of this model's family (label, parameters with units, relations)."""
+        return family(self.kind)
+
     def tf(self) -> tuple[np.ndarray, np.ndarray, float]:
-        """``(num, den, delay_s)`` in descending powers of s."""
-        p = self.params
-        K, T, L = p["K"], p["T"], p["L"]
-        if self.kind == "fopdt":
-            den = np.array([T, 1.0])
-        elif self.kind == "sopdt":
-            den = np.array([T * T, 2.0 * p["zeta"] * T, 1.0])
-        elif self.kind == "ipdt":
-            den = np.array([T, 1.0, 0.0])
-        elif self.kind == "topdt":
-            den = np.polymul([T * T, 2.0 * p["zeta"] * T, 1.0], [p["T3"], 1.0])
-        elif self.kind == "isopdt":
-            den = np.array([T * T, 2.0 * p["zeta"] * T, 1.0, 0.0])
-        elif self.kind == "ztopdt":
-            den = np.polymul([T * T, 2.0 * p["zeta"] * T, 1.0], [p["T3"], 1.0])
-            return np.array([K * p["Tz"], K]), den, float(L)
-        elif self.kind == "izsopdt":
-            den = np.array([T * T, 2.0 * p["zeta"] * T, 1.0, 0.0])
-            return np.array([K * p["Tz"], K]), den, float(L)
-        else:  # pragma: no cover - guarded by construction
-            raise ValueError(f"unknown model kind {self.kind!r}")
-        return np.array([K]), den, float(L)
+        """Transfer function of the model.
+
+        Returns
+        -------
+        tuple
+            ``(num, den, delay_s)``, polynomials in descending powers of s.
+        """
+        return self.family.tf(self.params)
 
     @property
     def integrating(self) -> bool:
-        """True for the families with an integrator (``ipdt``, ``isopdt``)."""
-        return self.kind in INTEGRATING_KINDS
+        """True for the families with an integrator (``ipdt``, ``isopdt``, ``izsopdt``)."""
+        return self.family.integrating
 
     def ultimate(self) -> tuple[float, float]:
         """``(ku, tu_s)`` of this model (first -180° crossing); ``(inf, nan)`` if none."""
@@ -142,50 +117,13 @@ class Model:
         p = dict(self.params)
         p["L"] = max(float(delay_s), 0.0)
         return replace(self, params=p, basis=basis,
-                       normalized_delay=_normalized_delay(self.kind, p))
+                       normalized_delay=self.family.normalized_delay(p))
 
     def to_dict(self) -> dict:
         return {"kind": self.kind, "params": {k: float(v) for k, v in self.params.items()},
                 "rmse": float(self.rmse), "rel_rmse": float(self.rel_rmse),
                 "normalized_delay": float(self.normalized_delay), "basis": self.basis,
                 "extras": {k: float(v) for k, v in self.extras.items()}}
-
-
-def _normalized_delay(kind: str, p: dict[str, float]) -> float:
-    L = p["L"]
-    if kind == "fopdt":
-        return L / (L + p["T"]) if L + p["T"] > 0 else 0.0
-    if kind in ("sopdt", "topdt", "ztopdt"):
-        # sum of time constants (average residence time)
-        tar = 2.0 * p["zeta"] * p["T"] + p.get("T3", 0.0)
-        return L / (L + tar) if L + tar > 0 else 0.0
-    return 0.0  # integrating: tau -> 0 by definition (Berner 2017)
-
-
-def _unit_tf(kind: str, th: np.ndarray):
-    if kind == "fopdt":
-        T = np.exp(th[0])
-        return np.array([1.0]), np.array([T, 1.0]), {"T": T}
-    if kind == "sopdt":
-        T, z = np.exp(th[0]), np.exp(th[1])
-        return np.array([1.0]), np.array([T * T, 2 * z * T, 1.0]), {"T": T, "zeta": z}
-    if kind == "topdt":
-        T, z, T3 = np.exp(th[0]), np.exp(th[1]), np.exp(th[2])
-        return (np.array([1.0]), np.polymul([T * T, 2 * z * T, 1.0], [T3, 1.0]),
-                {"T": T, "zeta": z, "T3": T3})
-    if kind == "ztopdt":
-        T, z, T3, tz = np.exp(th[0]), np.exp(th[1]), np.exp(th[2]), th[3]
-        return (np.array([tz, 1.0]), np.polymul([T * T, 2 * z * T, 1.0], [T3, 1.0]),
-                {"T": T, "zeta": z, "T3": T3, "Tz": tz})
-    if kind == "izsopdt":
-        T, z, tz = np.exp(th[0]), np.exp(th[1]), th[2]
-        return (np.array([tz, 1.0]), np.array([T * T, 2 * z * T, 1.0, 0.0]),
-                {"T": T, "zeta": z, "Tz": tz})
-    if kind == "isopdt":
-        T, z = np.exp(th[0]), np.exp(th[1])
-        return np.array([1.0]), np.array([T * T, 2 * z * T, 1.0, 0.0]), {"T": T, "zeta": z}
-    T = np.exp(th[0])
-    return np.array([1.0]), np.array([T, 1.0, 0.0]), {"T": T}
 
 
 def _linear_fit(cols: list[np.ndarray], y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -213,6 +151,8 @@ class _Fitter:
         self.u_ref = u_ref
         self.variant = variant
         self.kind, self.dt, self.k0, self.P = kind, dt, k0, period_s
+        self.family = family(kind)
+        integ = self.family.integrating
         self.u_raw = u
         self.step_in = np.ones(len(u))
         self.uc = u - np.mean(u)
@@ -242,14 +182,14 @@ class _Fitter:
             # the columns that do not depend on the searched parameters (offset, the trim's
             # ramp, the drift) are projected out once: each residual then solves only for the
             # gain and the free modes (variable projection; the same least-squares answer)
-            fixed = [self.ones] + ([self.ramp] if kind in INTEGRATING_KINDS else []) + self.drift
+            fixed = [self.ones] + ([self.ramp] if integ else []) + self.drift
             self.Q, self.R = np.linalg.qr(np.column_stack(fixed))
             self.y_perp = self.ybar - self.Q @ (self.Q.T @ self.ybar)
 
     def solve(self, x: np.ndarray):
         th = x[:-1]
         L = x[-1] * self.P
-        num, den, info = _unit_tf(self.kind, th)
+        num, den, info = self.family.unit_tf(th)
         dm = zoh_discretize(num, den, L, self.dt)
         if self.variant == "rest":
             # at rest before the first sample with the relay output at its centre u_ref:
@@ -261,13 +201,13 @@ class _Fitter:
                 w = np.concatenate([np.zeros(m), w[:-m]])
             resp = signal.lfilter(dm.b, dm.a, w)[:: self.q]
             cols = [resp, self.ones]
-            if self.kind in INTEGRATING_KINDS:
+            if self.family.integrating:
                 st = self.step_in
                 if m > 0:
                     st = np.concatenate([np.zeros(m), st[:-m]])
                 cols.append(signal.lfilter(dm.b, dm.a, st)[:: self.q])
             r, coef = _linear_fit(cols, self.ybar)
-            c_step = coef[2] if self.kind in INTEGRATING_KINDS else 0.0
+            c_step = coef[2] if self.family.integrating else 0.0
             # same layout as the free variant: [K, offset, ..., step coefficient]
             return r, np.array([coef[0], coef[1], c_step]), info, L
         w = self.uc
@@ -294,10 +234,10 @@ class _Fitter:
             r, cv = _linear_fit(list(Vp.T), self.y_perp)
             cf = np.linalg.solve(self.R, self.Q.T @ (self.ybar - V @ cv))
             coef = [cv[0], cf[0], *cv[1:]]
-            if self.kind in INTEGRATING_KINDS:
+            if self.family.integrating:
                 coef.append(cf[1])  # the ramp, last as below
             return r, np.array(coef), info, L
-        if self.kind in INTEGRATING_KINDS:
+        if self.family.integrating:
             cols.append(self.ramp)
         r, coef = _linear_fit(cols, self.ybar)
         return r, coef, info, L
@@ -306,110 +246,78 @@ class _Fitter:
         return self.solve(x)[0]
 
 
-def _grid(kind: str) -> list[np.ndarray]:
-    pts = []
-    if kind == "fopdt":
-        for T in (0.03, 0.15, 0.6, 3.0, 15.0):
-            for lf in (0.03, 0.12, 0.22, 0.32, 0.42):
-                pts.append(np.array([np.log(T), lf]))
-    elif kind == "topdt":
-        for T in (0.05, 0.15, 0.5):
-            for z in (0.5, 1.0):
-                for T3 in (0.02, 0.1):
-                    for lf in (0.02, 0.12, 0.3):
-                        pts.append(np.array([np.log(T), np.log(z), np.log(T3), lf]))
-    elif kind == "izsopdt":  # T, zeta relative to the period; zero Tz relative to T
-        for T in (0.1, 0.25):
-            for z in (0.5, 1.0):
-                for rz in (0.5, 1.5):
-                    for lf in (0.02, 0.08):
-                        pts.append(np.array([np.log(T), np.log(z), rz * T, lf]))
-    elif kind in ("sopdt", "isopdt"):
-        for T in (0.05, 0.15, 0.5, 2.0):
-            for z in (0.5, 1.0, 2.5):
-                for lf in (0.02, 0.12, 0.25, 0.4):
-                    pts.append(np.array([np.log(T), np.log(z), lf]))
-    else:
-        for T in (0.01, 0.05, 0.15, 0.4):
-            for lf in (0.0, 0.05, 0.12, 0.22):
-                pts.append(np.array([np.log(T), lf]))
-    return pts
+def _two_poles(t1: float, t2: float) -> dict[str, float]:
+    """Two real lags as the second-order factor ``T^2 s^2 + 2 zeta T s + 1``."""
+    T = float(np.sqrt(t1 * t2))
+    return {"T": T, "zeta": (t1 + t2) / (2.0 * T)}
 
 
-def _seed_starts(kind: str, seed: Model, period_s: float) -> list[np.ndarray]:
-    """Starting points for a richer family from the fitted simpler one it contains: part of
-    the dead time (or of the lag) is handed to the extra pole."""
-    p = seed.params
-    P = period_s
+def _from_limit(p: dict, P: float, kind: str) -> list[dict]:
+    # from the integrating family this one contains as a limit: the integrator becomes a lag
+    # much slower than the oscillation (the gain is solved linearly)
     out = []
-    if STABLE_LIMIT.get(seed.kind) == kind:
-        # from the integrating family this one contains as a limit: the integrator becomes a
-        # lag much slower than the oscillation (its gain is solved linearly)
-        T, L = p["T"], p["L"]
-        for slow in (4.0 * P, 40.0 * P):
-            if kind == "sopdt":  # poles T and slow as T^2 s^2 + 2 zeta T s + 1
-                Tq = np.sqrt(T * slow)
-                out.append(np.array([np.log(Tq), np.log((T + slow) / (2 * Tq)), L / P]))
-            elif kind == "topdt":
-                out.append(np.array([np.log(T), np.log(p["zeta"]), np.log(slow), L / P]))
-            else:  # ztopdt from izsopdt
-                out.append(np.array([np.log(T), np.log(p["zeta"]), np.log(slow), p["Tz"],
-                                     L / P]))
-        return out
-    if kind == "topdt":  # from sopdt: extra lag T3 = r*T taken out of the dead time
-        T, z, L = p["T"], p["zeta"], p["L"]
-        for r in (0.05, 0.25, 0.7):
-            out.append(np.array([np.log(T), np.log(z), np.log(r * T), max(L - r * T, 0.0) / P]))
-            out.append(np.array([np.log(T), np.log(z), np.log(r * T), L / P]))
-    elif kind == "ztopdt":  # from topdt: a zero at -1/Tz, either half-plane
-        T, z, T3, L = p["T"], p["zeta"], p["T3"], p["L"]
-        for r in (-0.3, 0.0, 0.3):
-            tz = r * T
-            out.append(np.array([np.log(T), np.log(z), np.log(T3), tz, (L - min(tz, 0)) / P]))
-            out.append(np.array([np.log(T), np.log(z), np.log(T3), tz, L / P]))
-        # dead time traded for a right half-plane zero (1 - L s ~ exp(-L s) at low frequency)
-        for f in (1.0, 0.5):
-            out.append(np.array([np.log(T), np.log(z), np.log(T3), -f * L, (1 - f) * L / P]))
-    elif kind == "izsopdt" and seed.kind == "ztopdt":  # its slow lag taken as an integrator
-        T, z, L = p["T"], p["zeta"], p["L"]
-        for tz in (p["Tz"], 0.5 * p["Tz"] + 0.5 * T):
-            out.append(np.array([np.log(T), np.log(z), tz, L / P]))
-    elif kind == "izsopdt":  # from isopdt: a zero at -1/Tz, either half-plane
-        T, z, L = p["T"], p["zeta"], p["L"]
-        for r in (-0.3, 0.3, 1.0, 3.0):
-            tz = r * T
-            out.append(np.array([np.log(T), np.log(z), tz, (L - min(tz, 0)) / P]))
-            out.append(np.array([np.log(T * (1 + max(r, 0))), np.log(z), tz, L / P]))
-        for f in (1.0, 0.5):
-            out.append(np.array([np.log(T), np.log(z), -f * L, (1 - f) * L / P]))
-    elif kind == "isopdt":  # from ipdt: the lag T split into two real poles T and r*T
-        T, L = p["T"], p["L"]
-        for r in (0.05, 0.25, 1.0):
-            t1, t2 = T, r * T
-            Tq = np.sqrt(t1 * t2)
-            z = (t1 + t2) / (2 * Tq)
-            out.append(np.array([np.log(Tq), np.log(z), max(L - t2, 0.0) / P]))
-            out.append(np.array([np.log(Tq), np.log(z), L / P]))
+    for slow in (4.0 * P, 40.0 * P):
+        if FAMILIES[kind].third_pole:
+            out.append({**p, "T3": slow})
+        else:  # the lag and the slow pole as one second-order factor
+            out.append({**p, **_two_poles(p["T"], slow)})
     return out
 
 
+def _pole_from_delay(p: dict, P: float) -> list[dict]:
+    # an extra lag T3 = r T, taken out of the dead time or not
+    return [{**p, "T3": r * p["T"], "L": L} for r in (0.05, 0.25, 0.7)
+            for L in (max(p["L"] - r * p["T"], 0.0), p["L"])]
+
+
+def _lag_split(p: dict, P: float) -> list[dict]:
+    # the lag T split into two real poles T and r T
+    return [{**p, **_two_poles(p["T"], r * p["T"]), "L": L} for r in (0.05, 0.25, 1.0)
+            for L in (max(p["L"] - r * p["T"], 0.0), p["L"])]
+
+
+def _zero_third_order(p: dict, P: float) -> list[dict]:
+    # a zero at -1/Tz in either half-plane; or the dead time traded for a right half-plane
+    # zero (1 - L s ~ exp(-L s) at low frequency)
+    out = [{**p, "Tz": r * p["T"], "L": L} for r in (-0.3, 0.0, 0.3)
+           for L in (p["L"] - min(r * p["T"], 0.0), p["L"])]
+    return out + [{**p, "Tz": -f * p["L"], "L": (1 - f) * p["L"]} for f in (1.0, 0.5)]
+
+
+def _zero_integrating(p: dict, P: float) -> list[dict]:
+    # a zero at -1/Tz in either half-plane, with or without the lag grown to make room
+    out = []
+    for r in (-0.3, 0.3, 1.0, 3.0):
+        tz = r * p["T"]
+        out.append({**p, "Tz": tz, "L": p["L"] - min(tz, 0.0)})
+        out.append({**p, "T": p["T"] * (1 + max(r, 0.0)), "Tz": tz})
+    return out + [{**p, "Tz": -f * p["L"], "L": (1 - f) * p["L"]} for f in (1.0, 0.5)]
+
+
+def _slow_lag_as_integrator(p: dict, P: float) -> list[dict]:
+    # a stable fit's slow lag taken as the integrator (izsopdt from ztopdt)
+    return [{**p, "Tz": tz} for tz in (p["Tz"], 0.5 * p["Tz"] + 0.5 * p["T"])]
+
+
+# (family, fitted family) -> starting parameters derived from the fitted one
+_SEEDERS = {("topdt", "sopdt"): _pole_from_delay, ("isopdt", "ipdt"): _lag_split,
+            ("ztopdt", "topdt"): _zero_third_order, ("izsopdt", "isopdt"): _zero_integrating,
+            ("izsopdt", "ztopdt"): _slow_lag_as_integrator}
+
+
+def _seed_starts(kind: str, seed: Model, period_s: float) -> list[np.ndarray]:
+    """Starting points for a family from a fitted family it extends or contains: part of the
+    dead time (or of the lag) is handed to the extra pole or zero."""
+    fam = FAMILIES[kind]
+    if fam.code == FAMILIES[seed.kind].stable_limit:
+        starts = _from_limit(seed.params, period_s, kind)
+    else:
+        seeder = _SEEDERS.get((kind, seed.kind))
+        starts = seeder(seed.params, period_s) if seeder else []
+    return [fam.search_vector(q, period_s) for q in starts]
+
+
 LONG_RECORD_PERIODS = 14  # a record longer than this is fitted on its tail first
-
-
-def _x_of(m: Model, period_s: float) -> np.ndarray:
-    """The search vector of :func:`_unit_tf` (plus the dead time in periods) for a fitted
-    model of the same family: the inverse of what :meth:`_Fitter.solve` reports."""
-    p = m.params
-    lead = {"fopdt": [np.log(p.get("T", 1.0))], "ipdt": [np.log(p.get("T", 1.0))],
-            "sopdt": [np.log(p.get("T", 1.0)), np.log(p.get("zeta", 1.0))],
-            "isopdt": [np.log(p.get("T", 1.0)), np.log(p.get("zeta", 1.0))],
-            "topdt": [np.log(p.get("T", 1.0)), np.log(p.get("zeta", 1.0)),
-                      np.log(p.get("T3", 1.0))],
-            "ztopdt": [np.log(p.get("T", 1.0)), np.log(p.get("zeta", 1.0)),
-                       np.log(p.get("T3", 1.0)), p.get("Tz", 0.0)],
-            "izsopdt": [np.log(p.get("T", 1.0)), np.log(p.get("zeta", 1.0)),
-                        p.get("Tz", 0.0)]}[m.kind]
-    return np.array([*lead, p["L"] / period_s], dtype=float)
 
 
 def fit_model(kind: str, dt: float, u: np.ndarray, y: np.ndarray, period_s: float,
@@ -438,24 +346,9 @@ def fit_model(kind: str, dt: float, u: np.ndarray, y: np.ndarray, period_s: floa
         k0 = int(np.ceil(0.6 * period_s / dt)) + 2
     k0 = min(k0, len(y) // 2)
     f = _Fitter(kind, dt, u, y, k0, period_s, variant, u_ref)
+    fam = family(kind)
     # time constants are fitted relative to the period
-    lnP = np.log(period_s)
-    lo_T, hi_T = lnP + np.log(1e-3), lnP + np.log(1e3)
-    if kind in ("sopdt", "isopdt"):
-        lb = np.array([lo_T, np.log(0.05), 0.0])
-        ub = np.array([hi_T, np.log(50.0), 0.6])
-    elif kind == "topdt":
-        lb = np.array([lo_T, np.log(0.05), lo_T, 0.0])
-        ub = np.array([hi_T, np.log(50.0), hi_T, 0.6])
-    elif kind == "izsopdt":
-        lb = np.array([lo_T, np.log(0.05), -period_s, 0.0])
-        ub = np.array([hi_T, np.log(50.0), period_s, 0.6])
-    elif kind == "ztopdt":
-        lb = np.array([lo_T, np.log(0.05), lo_T, -period_s, 0.0])
-        ub = np.array([hi_T, np.log(50.0), hi_T, period_s, 0.6])
-    else:
-        lb = np.array([lo_T, 0.0])
-        ub = np.array([hi_T, 0.6])
+    lb, ub = fam.bounds(period_s)
     starts = []
     seeds = seed if isinstance(seed, tuple) else (seed,) if seed is not None else ()
     seeded = []
@@ -463,16 +356,11 @@ def fit_model(kind: str, dt: float, u: np.ndarray, y: np.ndarray, period_s: floa
         if sd is not None and (sd.kind in SEEDED_FROM.get(kind, ())
                                or STABLE_LIMIT.get(sd.kind) == kind):
             seeded += _seed_starts(kind, sd, period_s)
-    gridded = []
-    if not seeded or kind == "izsopdt":  # no seeds, or a family whose seeds can all mislead
-        for g in _grid(kind):
-            x = g.copy()
-            x[0] += lnP
-            if kind == "topdt":
-                x[2] += lnP
-            elif kind == "izsopdt":
-                x[2] *= period_s
-            gridded.append(x)
+    # the grid when there are no seeds, or for a family whose seeds can all mislead
+    gridded = fam.grid_points(period_s) if not seeded or fam.grid_with_seeds else []
+    if not seeded and not gridded:
+        raise ValueError(f"the {kind} family has no starting grid; fit it with a seed from "
+                         f"{' or '.join(fam.seeded_from)}")
 
     def ranked(points: list[np.ndarray]) -> list[tuple[float, np.ndarray]]:
         out = []
@@ -493,7 +381,7 @@ def fit_model(kind: str, dt: float, u: np.ndarray, y: np.ndarray, period_s: floa
         tail = int(10 * period_s / dt)
         short = fit_model(kind, dt, u[-tail:], y[-tail:], period_s, amplitude,
                           variant="free", u_ref=u_ref, seed=seed)
-        x_short = np.clip(_x_of(short, period_s), lb + 1e-9, ub - 1e-9)
+        x_short = np.clip(fam.search_vector(short.params, period_s), lb + 1e-9, ub - 1e-9)
         starts = [(float(f.residual(x_short) @ f.residual(x_short)), x_short)] + starts
     best = None
     for _, x0 in starts:
@@ -512,12 +400,12 @@ def fit_model(kind: str, dt: float, u: np.ndarray, y: np.ndarray, period_s: floa
     params = {"K": K, **{k: float(v) for k, v in info.items()}, "L": float(L)}
     extras: dict[str, float] = {"offset": float(coef[1]), "rest": float(variant == "rest")}
     if K != 0:
-        if variant == "rest" and kind in INTEGRATING_KINDS:
+        if variant == "rest" and fam.integrating:
             extras["trim"] = float(u_ref - coef[2] / K)  # input that held the plant still
-        elif kind in INTEGRATING_KINDS:
+        elif fam.integrating:
             # ramp coefficient = -K * (trim - mean(u)) -> trim
             extras["trim"] = float(np.mean(u) - coef[-1] / K)
-    if kind in ("sopdt", "topdt", "isopdt", "ztopdt", "izsopdt"):
+    if fam.second_order:  # real poles of the second-order factor
         z, T = params["zeta"], params["T"]
         if z >= 1:
             s = np.sqrt(z * z - 1)
@@ -525,7 +413,7 @@ def fit_model(kind: str, dt: float, u: np.ndarray, y: np.ndarray, period_s: floa
             extras["T2"] = T * (z - s)
     rmse = float(np.sqrt(np.mean(r * r)))
     return Model(kind=kind, params=params, rmse=rmse,
-                 normalized_delay=_normalized_delay(kind, params),
+                 normalized_delay=fam.normalized_delay(params),
                  rel_rmse=rmse / amplitude if amplitude > 0 else float("nan"),
                  extras=extras)
 
@@ -620,7 +508,7 @@ def fit_models(dt: float, u: np.ndarray, y: np.ndarray, period_s: float, amplitu
 
 def _bic(m: Model, n: int, amplitude: float) -> float:
     floor = 1e-4 * amplitude
-    n_par = N_PARAMS[m.kind]
+    n_par = m.family.n_params
     return n * np.log(max(m.rmse, floor) ** 2) + n_par * np.log(n)
 
 

@@ -192,7 +192,7 @@ def _fopdt_for_amigo(ident: Identification) -> tuple[float, float, float, bool]:
     if chosen.integrating:
         p = chosen.params
         # lags lumped into the dead time (common practice, no source)
-        lag = p["T"] if chosen.kind == "ipdt" else 2.0 * p["zeta"] * p["T"]
+        lag = chosen.family.residence_time(p)
         return p["K"], 0.0, p["L"] + ts_half + lag, True
     fo = ident.models.get("fopdt")
     p = fo.params
