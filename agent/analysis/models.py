@@ -56,7 +56,6 @@ __all__ = ["FAMILIES", "MODEL_KINDS", "Family", "Model", "fit_model", "fit_model
            "select_model"]
 
 MODEL_KINDS = tuple(FAMILIES)
-INTEGRATING_KINDS = tuple(k for k, f in FAMILIES.items() if f.integrating)
 STABLE_LIMIT = {k: f.stable_limit for k, f in FAMILIES.items() if f.stable_limit}
 NESTED_IN = {k: f.nested_in for k, f in FAMILIES.items() if f.nested_in}
 SEEDED_FROM = {k: f.seeded_from for k, f in FAMILIES.items() if f.seeded_from}

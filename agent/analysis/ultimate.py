@@ -49,10 +49,6 @@ class UltimatePoint:
     tu_s: float
     basis: str
 
-    @property
-    def wu_rad_s(self) -> float:
-        return 2 * np.pi / self.tu_s
-
     def to_dict(self) -> dict:
         return {"method": self.method, "ku": float(self.ku), "tu_s": float(self.tu_s),
                 "basis": self.basis}

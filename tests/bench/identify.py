@@ -39,10 +39,10 @@ from scipy import optimize
 
 from agent.analysis import identify, simulate_relay, tune
 from agent.analysis.design import ms_constrained_design
+from agent.analysis.identify import METHODS
 from agent.analysis.predict import LoopSim
 from agent.analysis.robustness import sensitivity_peak
 
-METHODS = ("describing_function", "hysteresis_corrected", "first_harmonic", "model_fit")
 NOISES = (0.0, 0.01, 0.03)
 
 
