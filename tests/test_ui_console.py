@@ -153,6 +153,9 @@ def test_autotune_from_the_keyboard(tmp_path):
             assert DeviceState.RUNNING in states, "the strip polled a running board"
             result = app.controller.result
             assert result.outcome == "ok", result.message
+            from agent.logbook import read_session
+            cautions = read_session(result.session_path).manifest["confirmations"]
+            assert cautions["by"] == "console" and "run the plan" in cautions["what"], cautions
             assert [lr.status for lr in result.loops] == ["applied"]
             checklist = _text(app.query_one("#checklist"))
             assert "[+] 1. roll.rate" in checklist and "applied" in checklist
