@@ -39,6 +39,7 @@ while disarmed. Experiment kill thresholds of 0 fall back to the kill.* settings
 from __future__ import annotations
 
 import math
+import struct
 from dataclasses import dataclass
 
 from protocol.messages import SettingFlags, SettingType
@@ -162,7 +163,9 @@ class SettingsTable:
         """Why ``value`` cannot be stored in ``d``, or None if it can."""
         if not math.isfinite(value):
             return f"{d.name}: value {value} is not a finite number"
-        if not d.minimum <= value <= d.maximum:
+        # the bounds as SettingInfo carries them (binary32) are accepted too
+        lo, hi = struct.unpack("<2f", struct.pack("<2f", d.minimum, d.maximum))
+        if not min(d.minimum, lo) <= value <= max(d.maximum, hi):
             return (f"{d.name}: value {value:g} outside [{d.minimum:g}, {d.maximum:g}]")
         if d.type in (SettingType.INT, SettingType.CHOICE, SettingType.BOOL) and value != int(value):
             return f"{d.name}: value {value:g} must be a whole number"

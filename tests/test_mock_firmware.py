@@ -144,6 +144,18 @@ def test_out_of_bounds_settings_are_refused_and_change_nothing():
     assert fw.pid("roll", "rate").kp == pytest.approx(0.5)  # applied to the running PID
 
 
+def test_a_setting_accepts_the_bounds_it_describes():
+    # SettingInfo carries the bounds in binary32: 0.01 arrives as 0.0099999998, which the board
+    # refused as below its minimum of 0.01 (protocol/SPEC.md 11.3: the bounds are accepted)
+    w = in_state(S.DISARMED)
+    sid = setting_id(w.fw, "kill.angle_rad")
+    info = w.request(M.SettingDescribe(index=w.fw.settings.by_id[sid].index))
+    for bound in (info.minimum, info.maximum):
+        r = w.request(M.SettingWrite(setting_id=sid, value=bound))
+        assert isinstance(r, M.SettingValue) and r.value == bound, r
+        assert w.request(M.SettingRead(setting_id=sid)).value == bound
+
+
 def test_disarmed_only_setting_is_refused_while_armed():
     w = in_state(S.ARMED)
     r = w.request(M.SettingWrite(setting_id=setting_id(w.fw, "watchdog_s"), value=1.0))
@@ -846,6 +858,23 @@ def test_telemetry_config_refuses_an_unknown_level_and_ignores_absent_axes():
     w.tick(30)
     assert len(w.telemetry) > n0
     assert [s.axis for s in w.telemetry[-1].axes] == [0, 1, 2]
+
+
+def test_a_telemetry_sample_is_stamped_with_the_tick_of_its_values():
+    # protocol/SPEC.md 13.2: the sample of tick k carries t_k, the time of that tick's events;
+    # it carried t_k+1, so the sample stamped with a kill's time still showed live outputs
+    w = in_state(S.RUNNING, "gimbal-quad")
+    w.request(M.TelemetryConfig(rate_hz=1000, axis_mask=0b111, loop=0))
+    w.keepalive()
+    w.tick(20)
+    w.request(M.Kill(reason=M.KillReason.HOST_OPERATOR, value=0.0))
+    w.tick(3)
+    trip = [e for e in w.events if e.kind == EK.KILL_TRIPPED][-1]
+    at = [t for t in w.telemetry if t.time_us == trip.time_us]
+    before = [t for t in w.telemetry if t.time_us < trip.time_us]
+    assert len(at) == 1 and at[0].state == S.KILLED
+    assert all(a.output == 0.0 for a in at[0].axes)
+    assert before[-1].state == S.RUNNING and trip.time_us - before[-1].time_us == 1000
 
 
 def test_telemetry_reports_the_experiment_level_and_relay_state():

@@ -16,7 +16,8 @@ Tick k (device time t_k = k/loop_rate_hz) does, in this order:
    writes its outputs once per tick, so a command computed at tick k acts from t_k+1: together
    with the zero-order hold that is the sampling delay of protocol/timing.py). A kill zeroes the
    latched outputs before this step, so the outputs go to zero in the same tick;
-6. telemetry at the configured rate (``telemetry.py``).
+6. telemetry at the configured rate (``telemetry.py``), stamped with t_k: the sample holds the
+   measurements, setpoints and outputs of tick k (its events carry the same time).
 
 Watchdog: it runs on LINK time, the ``link_time_s`` passed to :meth:`Firmware.tick`. The runner
 passes wall-clock time in every speed mode (the host lives in wall time, so an accelerated device
@@ -235,11 +236,12 @@ class Firmware:
         for a in axes:
             a.plant.step(a.latched)
             a.latched = a.cmd
+        now_us = self.time_us  # a sample is stamped with the tick its values are from
         self.tick_count += 1
         tel = self._telemetry
         if tel.rate_hz and tel.due():
             self.stats["telemetry_sent"] += 1
-            self.outbox.send(tel.sample(self.time_us, self.state, self.exp))
+            self.outbox.send(tel.sample(now_us, self.state, self.exp))
 
     # ------------------------------------------------------------------ Python-level commands
     # (the protocol server calls these; tests and demos may call them directly)
