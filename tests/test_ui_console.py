@@ -102,7 +102,8 @@ async def start_and_confirm(pilot) -> None:
     await pilot.press("g")
     await wait_for(pilot, lambda: isinstance(app.screen, CautionScreen)
                    and getattr(app.focused, "id", None) == "caution-input", "the safety check")
-    assert app.controller.stand.state == DeviceState.DISARMED, "nothing is armed before the confirmation"
+    assert app.controller.stand.state == DeviceState.DISARMED, \
+        "nothing is armed before the confirmation"
     await pilot.press("y", "e", "s", "enter")
 
 
@@ -200,15 +201,18 @@ def test_autotune_from_the_keyboard(tmp_path):
             table.move_cursor(row=other)
             await pilot.pause(0.1)
             await pilot.press("a")
-            await wait_for(pilot, lambda: app.controller.busy is None and lr.applied_gains != before,
+            await wait_for(pilot, lambda: app.controller.busy is None
+                           and lr.applied_gains != before,
                            "the other candidate to be applied")
             kp_name = "roll.rate.kp"
             assert app.controller.stand.session.values[kp_name] == pytest.approx(
                 lr.tuning.candidates[other].kp, rel=1e-5)
             await pilot.press("b")
-            await wait_for(pilot, lambda: app.controller.busy is None and lr.status == "rolled_back",
+            await wait_for(pilot, lambda: app.controller.busy is None
+                           and lr.status == "rolled_back",
                            "the roll back")
-            assert app.controller.stand.session.values[kp_name] == pytest.approx(before[kp_name], rel=1e-5)
+            assert app.controller.stand.session.values[kp_name] == pytest.approx(
+                before[kp_name], rel=1e-5)
             await pilot.press("ctrl+q")
 
     asyncio.run(run())
@@ -235,10 +239,12 @@ def test_kill_key_during_the_relay(tmp_path):
                            and app.controller.stand.state == DeviceState.RUNNING,
                            "the relay experiment")
             await pilot.press("ctrl+k")
-            await wait_for(pilot, lambda: app.controller.stand.mock.firmware.state == DeviceState.KILLED,
+            await wait_for(pilot, lambda: app.controller.stand.mock.firmware.state
+                           == DeviceState.KILLED,
                            "the simulated board to report KILLED")
             await wait_for(pilot, lambda: app.controller.busy is None, "the workflow to end")
-            assert app.controller.result is None or app.controller.result.outcome in ("killed", "failed")
+            result = app.controller.result
+            assert result is None or result.outcome in ("killed", "failed")
             await wait_for(pilot, lambda: app.controller.stand.state == DeviceState.KILLED
                            and "KILLED" in screen_lines(app)[0]
                            and "host_operator" in screen_lines(app)[0],
@@ -251,7 +257,8 @@ def test_kill_key_during_the_relay(tmp_path):
             assert not isinstance(app.screen, CautionScreen)
             # clear the kill, by key, and the board is usable again
             await pilot.press("x")
-            await wait_for(pilot, lambda: app.controller.busy is None and not app.controller.stand.killed,
+            await wait_for(pilot, lambda: app.controller.busy is None
+                           and not app.controller.stand.killed,
                            "the kill to clear")
             assert app.controller.stand.mock.firmware.state == DeviceState.DISARMED
             assert not app.query_one("#kill-box").display
@@ -274,7 +281,8 @@ def test_kill_key_on_the_safety_check_and_without_a_board(tmp_path):
             await plan_one_loop(pilot, verify=True)
             await start_and_confirm_only_show(pilot)
             await pilot.press("ctrl+k")  # the modal is on top: the kill still goes out
-            await wait_for(pilot, lambda: app.controller.stand.mock.firmware.state == DeviceState.KILLED,
+            await wait_for(pilot, lambda: app.controller.stand.mock.firmware.state
+                           == DeviceState.KILLED,
                            "the board to be killed from the safety check")
             await pilot.press("escape")
             await pilot.pause(0.1)
@@ -338,7 +346,8 @@ def test_wrong_confirmation_word_does_not_arm(tmp_path):
             assert "is not 'yes'" in _text(app.screen.query_one("#caution-hint"))
             await pilot.press("escape")
             await pilot.pause(0.2)
-            assert app.controller.stand.state == DeviceState.DISARMED and not app.controller.stand.confirmed
+            stand = app.controller.stand
+            assert stand.state == DeviceState.DISARMED and not stand.confirmed
             assert app.controller.busy is None
             await pilot.press("ctrl+q")
 
@@ -368,7 +377,8 @@ def test_a_kill_on_the_board_is_shown_with_its_reason(tmp_path):
             await connected(pilot)
             await pilot.press("f3")  # any tab: the strip and the Run tab's box both show it
             app.controller.stand.mock.firmware.press_kill_button()  # the board's own kill input
-            await wait_for(pilot, lambda: app.controller.last_kill is not None, "the board's kill event")
+            await wait_for(pilot, lambda: app.controller.last_kill is not None,
+                           "the board's kill event")
             assert app.controller.last_kill["origin"] == "device"
             # the status reply can turn the strip KILLED before the kill event arrives; the
             # strip must then gain the reason as well (CI once read it in between)

@@ -205,7 +205,7 @@ class Controller(BoardActions):
                              "hardware kill if something is moving.", severity="warning")
             return
         try:
-            operations.kill(stand, KillReason.HOST_OPERATOR)  # first: a running workflow ends killed
+            operations.kill(stand, KillReason.HOST_OPERATOR)  # a running workflow ends killed
         except (LinkError, OSError) as exc:  # link gone: the board's watchdog kills; say what to do
             if self._stop is not None:
                 self._stop.set()
