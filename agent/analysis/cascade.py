@@ -19,12 +19,24 @@ class CascadeCheck:
     message: str
 
     def to_dict(self) -> dict:
+        """JSON-ready dictionary (floats, lists, strings)."""
         return {"ratio": float(self.ratio), "ok": bool(self.ok), "message": self.message}
 
 
 def cascade_check(inner_bandwidth_rad_s: float, outer_bandwidth_rad_s: float,
                   min_ratio: float = 5.0) -> CascadeCheck:
     """Compare closed-loop bandwidths (rad/s) of an inner loop and the loop around it.
+
+    Parameters
+    ----------
+    inner_bandwidth_rad_s, outer_bandwidth_rad_s : float
+        Closed-loop bandwidths of the inner loop and of the loop around it (rad/s).
+    min_ratio : float
+        Smallest acceptable inner/outer ratio.
+
+    Returns
+    -------
+    CascadeCheck
 
     Raises
     ------

@@ -38,7 +38,22 @@ __all__ = ["controller_freq", "discrete_polys", "discretize", "filter_for_noise"
 
 
 def controller_freq(kp: float, ki: float, kd: float, tf_s: float, w: np.ndarray) -> np.ndarray:
-    """Feedback path ``C(jw) = kp + ki/(jw) + kd*jw/(tf_s*jw + 1)``."""
+    """Feedback path ``C(jw) = kp + ki/(jw) + kd*jw/(tf_s*jw + 1)``.
+
+    Parameters
+    ----------
+    kp, ki, kd : float
+        Proportional, integral (per second) and derivative (seconds) gains.
+    tf_s : float
+        Derivative filter time constant (s).
+    w : ndarray
+        Angular frequencies (rad/s).
+
+    Returns
+    -------
+    ndarray
+        Complex ``C(jw)``.
+    """
     s = 1j * np.asarray(w, dtype=float)
     c = kp + 0 * s
     if ki:
@@ -50,7 +65,20 @@ def controller_freq(kp: float, ki: float, kd: float, tf_s: float, w: np.ndarray)
 
 def noise_gain(kp: float, kd: float, tf_s: float, sample_time_s: float) -> float:
     """Output deviation per unit of white measurement noise, through the proportional and
-    filtered derivative terms as the board runs them (see the module docstring)."""
+    filtered derivative terms as the board runs them (see the module docstring).
+
+    Parameters
+    ----------
+    kp, kd, tf_s : float
+        Proportional and derivative gains, derivative filter time (s).
+    sample_time_s : float
+        The board's loop sample time.
+
+    Returns
+    -------
+    float
+        Standard deviation of the output per unit standard deviation of the noise.
+    """
     if not kd:
         return abs(float(kp))
     ts = float(sample_time_s)
@@ -61,7 +89,22 @@ def noise_gain(kp: float, kd: float, tf_s: float, sample_time_s: float) -> float
 
 def filter_for_noise(kp: float, kd: float, sample_time_s: float, gain_max: float) -> float:
     """Shortest derivative filter time with ``noise_gain <= gain_max``: 0.0 when no filter is
-    needed, ``inf`` when the proportional gain alone exceeds ``gain_max`` (no filter can help)."""
+    needed, ``inf`` when the proportional gain alone exceeds ``gain_max`` (no filter can help).
+
+    Parameters
+    ----------
+    kp, kd : float
+        Proportional and derivative gains.
+    sample_time_s : float
+        The board's loop sample time.
+    gain_max : float
+        Largest acceptable :func:`noise_gain`.
+
+    Returns
+    -------
+    float
+        The filter time constant (s).
+    """
     from scipy.optimize import brentq
     if abs(kp) >= gain_max:
         return float("inf")
@@ -79,7 +122,18 @@ def filter_for_noise(kp: float, kd: float, sample_time_s: float, gain_max: float
 
 
 def standard_form(kp: float, ki: float, kd: float, tf_s: float) -> dict:
-    """Gains in standard form ``K (1 + 1/(Ti s) + Td s)``; ``Ti = inf`` without integral."""
+    """Gains in standard form ``K (1 + 1/(Ti s) + Td s)``; ``Ti = inf`` without integral.
+
+    Parameters
+    ----------
+    kp, ki, kd, tf_s : float
+        Parallel-form gains and derivative filter time (s).
+
+    Returns
+    -------
+    dict
+        ``K``, ``Ti`` (s), ``Td`` (s) and the filter ratio.
+    """
     return {
         "K": float(kp),
         "Ti_s": float(kp / ki) if ki > 0 else float("inf"),
@@ -90,7 +144,24 @@ def standard_form(kp: float, ki: float, kd: float, tf_s: float) -> dict:
 
 def discretize(kp: float, ki: float, kd: float, tf_s: float, b: float, sample_time_s: float,
                i_limit: float) -> dict:
-    """Coefficients of the backward-Euler controller the board runs (see module docstring)."""
+    """Coefficients of the backward-Euler controller the board runs (see module docstring).
+
+    Parameters
+    ----------
+    kp, ki, kd, tf_s : float
+        Controller gains and derivative filter time (s).
+    b : float
+        Set-point weight of the proportional term.
+    sample_time_s : float
+        The board's loop sample time.
+    i_limit : float
+        Integrator clamp (output units).
+
+    Returns
+    -------
+    dict
+        Coefficient names to values.
+    """
     ts = float(sample_time_s)
     alpha = tf_s / (tf_s + ts) if tf_s > 0 else 0.0
     return {
@@ -107,7 +178,22 @@ def discretize(kp: float, ki: float, kd: float, tf_s: float, b: float, sample_ti
 
 def discrete_polys(kp: float, ki: float, kd: float, tf_s: float, b: float, h: float
                    ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Controller polynomials in ``z^-1`` at step ``h``: ``U = (Nr R - Ny Y) / Dc``."""
+    """Controller polynomials in ``z^-1`` at step ``h``: ``U = (Nr R - Ny Y) / Dc``.
+
+    Parameters
+    ----------
+    kp, ki, kd, tf_s : float
+        Controller gains and derivative filter time (s).
+    b : float
+        Set-point weight of the proportional term.
+    h : float
+        Step (s).
+
+    Returns
+    -------
+    tuple of ndarray
+        ``(Nr, Ny, Dc)``.
+    """
     alpha = tf_s / (tf_s + h) if tf_s > 0 else 0.0
     one_a = np.array([1.0, -alpha])
     diff = np.array([1.0, -1.0])

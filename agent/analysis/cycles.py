@@ -11,9 +11,8 @@ Measurement noise moves each switching instant and each peak, so on a noisy loop
 of a steady oscillation scatter by more than the fixed tolerances. Given the noise as a fraction
 of the amplitude (``noise_ratio``, sigma/a), the tolerances widen to three robust deviations of
 the last 20 cycles, but never beyond three times the scatter noise can explain: 0.8 sigma/a for
-a period and 1.6 sigma/a for a half peak-to-peak amplitude (the largest per-cycle scatter
-measured on the six loops of the invented gimbal stand: 0.78 and 1.65; own measurement), and
-never beyond 25 % and 35 %, so that a change of the relay setting (the amplitude ramp's steps
+a period and 1.6 sigma/a for a half peak-to-peak amplitude (the largest per-cycle scatter of a
+steady cycle, calibrated on the simulated stand: README.md), and never beyond 25 % and 35 %, so that a change of the relay setting (the amplitude ramp's steps
 are 2.5-fold) or a larger drift still ends the stationary run. On a noisy loop the run ends
 at two failing cycles in a row; a single stray cycle is taken as noise.
 """
@@ -75,6 +74,7 @@ class CycleStats:
     amplitudes: np.ndarray = field(default_factory=lambda: np.zeros(0))
 
     def to_dict(self) -> dict:
+        """JSON-ready dictionary (floats, lists, strings)."""
         return {
             "n_cycles": int(self.n_cycles),
             "period_s": float(self.period_s),
@@ -134,6 +134,21 @@ def detect_cycles(t_s: np.ndarray, y: np.ndarray, u: np.ndarray, n_stable: int =
 
     ``noise_ratio`` (measurement noise over oscillation amplitude, sigma/a) widens the
     tolerances to what noise explains (see the module docstring); 0 keeps them fixed.
+
+    Parameters
+    ----------
+    t_s, y, u : ndarray
+        Sample times, measurement and relay output.
+    n_stable : int
+        Consecutive cycles that must agree for the oscillation to be stationary.
+    period_tol, amplitude_tol : float
+        Relative agreement of periods and amplitudes on a quiet record.
+    noise_ratio : float
+        Measurement noise over oscillation amplitude (sigma/a).
+
+    Returns
+    -------
+    CycleStats
 
     Raises
     ------

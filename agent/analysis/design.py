@@ -179,7 +179,31 @@ def ms_constrained_design(model, controller: str = "pi", ms_target: float = 1.4,
 
     ``extra_models``: other plausible models of the same loop; the Ms bound is then enforced
     on every one of them (the IAE is still judged on ``model``). ``noise_gain_max``: bound on
-    the controller's noise gain (needs ``sample_time_s``)."""
+    the controller's noise gain (needs ``sample_time_s``).
+
+    Parameters
+    ----------
+    model
+        Loop model (``(num, den, delay_s)`` or anything with ``tf()``).
+    controller : {"pi", "pid", "pd"}
+        Controller structure.
+    ms_target : float
+        Bound on the maximum sensitivity.
+    sample_time_s : float, optional
+        The board's sample time (discrete-time evaluation and the noise bound).
+    filter_n : float
+        Derivative filter ratio ``Td / Tf``.
+    min_tf_s : float
+        Shortest derivative filter time (s).
+    extra_models : tuple
+        Other plausible models of the loop.
+    noise_gain_max : float, optional
+        Bound on the controller's noise gain.
+
+    Returns
+    -------
+    Design
+    """
     if ms_target <= 1.0:
         raise ValueError(f"ms_target must exceed 1 (got {ms_target}); 1.2–2.0 is the usual range.")
     if noise_gain_max is not None and not (noise_gain_max > 0 and sample_time_s):

@@ -157,6 +157,15 @@ def identify(record: RelayRecord) -> Identification:
     choose one; estimate the
     trim/bias and static gain; collect quality warnings.
 
+    Parameters
+    ----------
+    record : RelayRecord
+        One relay experiment (see :class:`agent.analysis.records.RelayRecord`).
+
+    Returns
+    -------
+    Identification
+
     Raises
     ------
     RecordError

@@ -36,7 +36,18 @@ def _trim_leading(p: np.ndarray) -> np.ndarray:
 
 
 def as_tf(model) -> tuple[np.ndarray, np.ndarray, float]:
-    """Return ``(num, den, delay_s)`` from a tuple or from anything with a ``tf()`` method."""
+    """Return ``(num, den, delay_s)`` from a tuple or from anything with a ``tf()`` method.
+
+    Parameters
+    ----------
+    model
+        ``(num, den, delay_s)`` or an object with a ``tf()`` method returning that.
+
+    Returns
+    -------
+    tuple
+        ``(num, den, delay_s)`` as float arrays and a float.
+    """
     if hasattr(model, "tf"):
         model = model.tf()
     num, den, delay = model
@@ -125,6 +136,19 @@ def zoh_discretize(num, den, delay_s: float, dt: float) -> DiscreteModel:
     The dead time is split into ``m`` whole samples and a fraction ``theta < dt``; over one tick
     the delayed input takes the previous held value for ``theta`` seconds and the current one for
     the rest, which gives two input matrices and is exact for piecewise-constant inputs.
+
+    Parameters
+    ----------
+    num, den : array_like
+        Polynomials in descending powers of s.
+    delay_s : float
+        Dead time (s).
+    dt : float
+        Sample time (s).
+
+    Returns
+    -------
+    DiscreteModel
     """
     num, den, _ = as_tf((num, den, 0.0))
     if len(num) > len(den):
@@ -192,6 +216,22 @@ def lsim_zoh(model, dt: float, u: np.ndarray, u_before: float = 0.0) -> np.ndarr
 
     ``u_before`` is the input value assumed before the first sample (it matters only through
     the dead time).
+
+    Parameters
+    ----------
+    model
+        ``(num, den, delay_s)`` or anything :func:`as_tf` accepts.
+    dt : float
+        Sample time (s).
+    u : ndarray
+        Input held over each sample.
+    u_before : float
+        Input before the first sample.
+
+    Returns
+    -------
+    ndarray
+        Output at the sample instants.
     """
     num, den, delay = as_tf(model)
     dm = zoh_discretize(num, den, delay, dt)
@@ -220,7 +260,20 @@ def _shift(u: np.ndarray, m: int, fill: float) -> np.ndarray:
 
 
 def freq_response(model, w: np.ndarray) -> np.ndarray:
-    """``G(jw)`` of a continuous model ``(num, den, delay_s)`` at angular frequencies ``w``."""
+    """``G(jw)`` of a continuous model ``(num, den, delay_s)`` at angular frequencies ``w``.
+
+    Parameters
+    ----------
+    model
+        ``(num, den, delay_s)`` or anything :func:`as_tf` accepts.
+    w : ndarray
+        Angular frequencies (rad/s).
+
+    Returns
+    -------
+    ndarray
+        Complex ``G(jw)``.
+    """
     num, den, delay = as_tf(model)
     s = 1j * np.asarray(w, dtype=float)
     return np.polyval(num, s) / np.polyval(den, s) * np.exp(-s * delay)
@@ -244,6 +297,18 @@ def phase_crossover(model, w_min: float | None = None, w_max: float | None = Non
     The phase is unwrapped from low frequency, so integrators start at -90° and a right
     half-plane zero counts as lag. Returns ``None`` when the phase never reaches -180° in the
     searched range (then the loop has no ultimate gain).
+
+    Parameters
+    ----------
+    model
+        ``(num, den, delay_s)`` or anything :func:`as_tf` accepts.
+    w_min, w_max : float, optional
+        Searched frequency range (rad/s); by default derived from the model's time constants.
+
+    Returns
+    -------
+    tuple of float or None
+        ``(ku, wu)``, or None without a crossing.
     """
     num, den, delay = as_tf(model)
     wr = _ref_frequency(num, den, delay)

@@ -110,15 +110,42 @@ class Model:
         return ku, 2 * np.pi / wu
 
     def freq(self, w: np.ndarray) -> np.ndarray:
+        """Frequency response of the model.
+
+        Parameters
+        ----------
+        w : ndarray
+            Angular frequencies (rad/s).
+
+        Returns
+        -------
+        ndarray
+            Complex frequency response of :meth:`tf`.
+        """
         return freq_response(self.tf(), w)
 
     def with_delay(self, delay_s: float, basis: str) -> Model:
+        """The same model with another dead time, e.g. on the loop or the plant basis.
+
+        Parameters
+        ----------
+        delay_s : float
+            The new dead time (s); negative values are clipped to 0.
+        basis : {"record", "loop", "plant"}
+            What the dead time now describes.
+
+        Returns
+        -------
+        Model
+            A copy with the dead time, the basis and the normalized delay replaced.
+        """
         p = dict(self.params)
         p["L"] = max(float(delay_s), 0.0)
         return replace(self, params=p, basis=basis,
                        normalized_delay=self.family.normalized_delay(p))
 
     def to_dict(self) -> dict:
+        """JSON-ready dictionary (floats, lists, strings)."""
         return {"kind": self.kind, "params": {k: float(v) for k, v in self.params.items()},
                 "rmse": float(self.rmse), "rel_rmse": float(self.rel_rmse),
                 "normalized_delay": float(self.normalized_delay), "basis": self.basis,
@@ -156,9 +183,8 @@ class _Fitter:
         self.step_in = np.ones(len(u))
         self.uc = u - np.mean(u)
         n = len(y) - k0
-        # compare on at most ~16000 rows (the filters still run at the full rate); a thinner
-        # comparison throws information away: on 40-period records every 4th row doubled the
-        # scatter of the identified ultimate gain
+        # compare on at most ~16000 rows (the filters still run at the full rate): a thinner
+        # comparison throws information away (see README.md)
         self.q = max(1, n // 16000)
         self.ybar = y[k0:][:: self.q]
         self.ones = np.ones(len(self.ybar))
@@ -170,8 +196,7 @@ class _Fitter:
         # eighth of the oscillation frequency with half-cosines over the record (detrending,
         # common practice in system identification, no source). Only on long records: a short
         # one shows too little of a slow disturbance to matter, and its low frequencies are
-        # what tells an integrating loop from a slow lag. (A quarter of the oscillation
-        # frequency was tried: it moved the invented gimbal's roll angle Ku by 13 %.)
+        # what tells an integrating loop from a slow lag. (Why an eighth: README.md.)
         span = n * dt
         long_record = period_s > 0 and span >= LONG_RECORD_PERIODS * period_s
         n_drift = min(int(span / (4.0 * period_s)) - 1, 40) if long_record else 0
@@ -374,8 +399,7 @@ def fit_model(kind: str, dt: float, u: np.ndarray, y: np.ndarray, period_s: floa
     # lead into a poorer minimum) and the best grid point when there is a grid too
     starts = rs[:1] + rg[:1] if rs and rg else rs[:2] if rs else rg[:1]
     if not seeded and len(y) * dt > LONG_RECORD_PERIODS * period_s:
-        # a long record: the coarse grid can rank a start in a poorer basin first (seen on
-        # 40-period records: 20 % more residual than the plant's own parameters), so the
+        # a long record: the coarse grid can rank a start in a poorer basin first, so the
         # family is first fitted on the last ten periods and that fit starts the search too
         tail = int(10 * period_s / dt)
         short = fit_model(kind, dt, u[-tail:], y[-tail:], period_s, amplitude,
@@ -434,11 +458,34 @@ def fit_models(dt: float, u: np.ndarray, y: np.ndarray, period_s: float, amplitu
     ``noise_std`` (when given). A richer family (``topdt``, ``isopdt``, ``ztopdt``,
     ``izsopdt``) starts from the parameters of the simpler families it extends, fitted in the
     same variant, and is not fitted at all (absent from the result) when a family it extends already fits down to
-    the noise (``select_model`` could never prefer it then)."""
+    the noise (``select_model`` could never prefer it then).
+
+    Parameters
+    ----------
+    dt : float
+        Sample time (s).
+    u, y : ndarray
+        Applied relay output and measurement.
+    period_s, amplitude : float
+        Oscillation period and amplitude.
+    kinds : tuple of str
+        Families to fit (codes of :data:`FAMILIES`).
+    u_ref : float
+        Relay centre: the output before the first sample of an at-rest record.
+    noise_std : float, optional
+        Measurement noise (standard deviation).
+    at_rest : bool, optional
+        Whether the record starts at rest (None: decided from the record).
+
+    Returns
+    -------
+    dict of str to Model
+        The fitted families by code.
+    """
     floor = 0.005 * amplitude
     if noise_std is not None and np.isfinite(noise_std):
         # 1.05: a residual of 1.3 noise deviations still hides a misfit of 0.8 sigma, which
-        # on a long record is a clearly wrong start assumption (seen on 40-period records)
+        # on a long record is a clearly wrong start assumption
         floor = max(floor, 1.05 * float(noise_std))
     order = sorted(kinds, key=lambda k: any(s in kinds for s in SEEDED_FROM.get(k, ())))
 
@@ -525,6 +572,21 @@ def select_model(models: dict[str, Model], n_samples: int, amplitude: float,
     ``sqrt(rmse^2 - noise^2)``, floored at 0.3 noise deviations and 1e-4 of the amplitude, so
     that two fits that both reach the noise are called equal; a rejected richer family is set
     aside and the choice repeated.
+
+    Parameters
+    ----------
+    models : dict of str to Model
+        Fitted families (:func:`fit_models`).
+    n_samples : int
+        Samples in the fitted record (for the information criterion).
+    amplitude : float
+        Oscillation amplitude.
+    noise_std : float, optional
+        Measurement noise (standard deviation).
+
+    Returns
+    -------
+    Model
     """
     ok = {k: m for k, m in models.items() if np.isfinite(m.rmse) and m.params["K"] > 0}
     if not ok:

@@ -40,6 +40,7 @@ class StepMetrics:
     iae: float
 
     def to_dict(self) -> dict:
+        """JSON-ready dictionary (floats, lists, strings)."""
         return {k: float(getattr(self, k)) for k in ("overshoot", "rise_s", "settling_s", "iae")}
 
 
@@ -59,6 +60,18 @@ class StepPrediction:
     settled: bool = True
 
     def to_dict(self, with_series: bool = False) -> dict:
+        """JSON-ready dictionary of the prediction.
+
+        Parameters
+        ----------
+        with_series : bool
+            Include the simulated series.
+
+        Returns
+        -------
+        dict
+            JSON-ready values.
+        """
         d = {"overshoot": float(self.overshoot), "rise_s": float(self.rise_s),
              "settling_s": float(self.settling_s), "iae_setpoint": float(self.iae_setpoint),
              "iae_load": float(self.iae_load), "load_peak": float(self.load_peak),
@@ -100,6 +113,15 @@ def denoise_step(t_s, y, y0: float, r: float, noise_std: float
     rise time follows the rise and the first peak closely while averaging ``W`` samples of
     noise. The settled part (after the peak plus half the long window) is smoothed again over
     four rise times for the settling time.
+
+    Parameters
+    ----------
+    t_s, y : ndarray
+        Sample times (uniformly spaced) and measurement.
+    y0, r : float
+        Start value and reference of the step.
+    noise_std : float
+        Measurement noise (standard deviation).
 
     Returns
     -------
@@ -147,11 +169,22 @@ def step_metrics(t_s, y, y0: float, r: float, noise_std: float | None = None) ->
     count only beyond the 2 % band plus two deviations of the noise left after smoothing. If
     that leftover noise exceeds 0.25 % of the step (an eighth of the band), a 2 % settling
     time cannot be resolved from the record and it is nan (record more samples or a larger
-    step). Expected accuracy (tests/test_analysis_tuning.py): at noise 15 % of the step
-    and about 150 samples per rise time, overshoot within 0.06 of the step and rise time
-    within 15 %; the settling time is a discontinuous measure (it jumps by half an
-    oscillation period when a late peak touches the band) and is checked within half a
-    damped period at 3 % noise.
+    step). The settling time is a discontinuous measure: it jumps by half an oscillation
+    period when a late peak touches the band. Accuracy: tests/test_analysis_tuning.py and
+    README.md.
+
+    Parameters
+    ----------
+    t_s, y : ndarray
+        Sample times and response.
+    y0, r : float
+        Start value and reference of the step.
+    noise_std : float, optional
+        Measurement noise (standard deviation); smooths the record first when positive.
+
+    Returns
+    -------
+    StepMetrics
 
     Raises
     ------
@@ -242,7 +275,19 @@ class LoopSim:
         return dc, ny, nr, char, sh
 
     def responses(self, kp, ki, kd, tf_s, b, horizon_s: float):
-        """``(t, y_setpoint, y_load)`` for unit steps at time 0."""
+        """``(t, y_setpoint, y_load)`` for unit steps at time 0.
+
+        Parameters
+        ----------
+        kp, ki, kd, tf_s, b : float
+            Controller gains, derivative filter time (s) and set-point weight.
+        horizon_s : float
+            Simulated time (s).
+
+        Returns
+        -------
+        tuple of ndarray
+        """
         dc, ny, nr, char, sh = self._polys(kp, ki, kd, tf_s, b)
         n = int(np.ceil(horizon_s / self.h)) + 1
         step = np.ones(n)
@@ -254,7 +299,20 @@ class LoopSim:
         return np.arange(n) * self.h, ysp, yld
 
     def load_iae(self, kp, ki, kd, tf_s, horizon_s: float) -> tuple[float, bool]:
-        """IAE of the unit load step response and whether it settled within the horizon."""
+        """IAE of the unit load step response and whether it settled within the horizon.
+
+        Parameters
+        ----------
+        kp, ki, kd, tf_s : float
+            Controller gains and derivative filter time (s).
+        horizon_s : float
+            Simulated time (s).
+
+        Returns
+        -------
+        tuple
+            ``(iae, settled)``.
+        """
         dc, ny, nr, char, sh = self._polys(kp, ki, kd, tf_s, 1.0)
         n = int(np.ceil(horizon_s / self.h)) + 1
         num_d = np.concatenate([sh, np.convolve(self.bp, dc)])
@@ -278,6 +336,19 @@ class LoopSim:
         return iae, False
 
     def default_horizon(self, ki: float, kp: float) -> float:
+        """Simulation horizon long enough for the integral action to settle.
+
+        Parameters
+        ----------
+        ki, kp : float
+            Integral and proportional gains.
+
+        Returns
+        -------
+        float
+            Twenty ultimate periods or eight integral times, whichever is longer, at most sixty
+            ultimate periods (s).
+        """
         ti = kp / ki if ki > 0 else 0.0
         return float(min(max(20 * self.tu, 8 * ti), 60 * self.tu))
 
@@ -285,7 +356,23 @@ class LoopSim:
 def predict_step(model, cand, sample_time_s: float | None = None,
                  horizon_s: float | None = None) -> StepPrediction:
     """Predict unit set-point and load steps of ``cand`` (anything with kp, ki, kd, tf_s, b) on
-    ``model`` (use the loop model: ``Identification.model_loop``)."""
+    ``model`` (use the loop model: ``Identification.model_loop``).
+
+    Parameters
+    ----------
+    model
+        Loop model (``(num, den, delay_s)`` or anything with ``tf()``).
+    cand
+        Gains: anything with ``kp``, ``ki``, ``kd``, ``tf_s``, ``b``.
+    sample_time_s : float, optional
+        Simulate the discrete controller at this step (default: continuous).
+    horizon_s : float, optional
+        Simulated time (default: :meth:`LoopSim.default_horizon`).
+
+    Returns
+    -------
+    StepPrediction
+    """
     sim = LoopSim(model, sample_time_s)
     kp, ki, kd, tf_s, b = cand.kp, cand.ki, cand.kd, cand.tf_s, cand.b
     if horizon_s is None:
@@ -311,7 +398,20 @@ def predict_step(model, cand, sample_time_s: float | None = None,
 
 def loop_bandwidth(model, cand) -> float:
     """Closed-loop -3 dB bandwidth (rad/s) of ``T = L/(1+L)`` on ``model``, relative to its
-    low-frequency gain (the feedback path; set-point weighting does not change it)."""
+    low-frequency gain (the feedback path; set-point weighting does not change it).
+
+    Parameters
+    ----------
+    model
+        Loop model (``(num, den, delay_s)`` or anything with ``tf()``).
+    cand
+        Gains: anything with ``kp``, ``ki``, ``kd``, ``tf_s``.
+
+    Returns
+    -------
+    float
+        Bandwidth (rad/s); nan when the response never drops 3 dB in the searched range.
+    """
     r = phase_crossover(model)
     wu = r[1] if r is not None else 1.0
     w = wu * np.geomspace(1e-4, 1e2, 4000)

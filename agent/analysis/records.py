@@ -96,6 +96,16 @@ def _finite_scalar(name: str, value: object) -> float:
 def validate_record(rec: RelayRecord) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Check a record and return ``(t_s, y, u)`` as 1-D float arrays.
 
+    Parameters
+    ----------
+    rec : RelayRecord
+        The record to check.
+
+    Returns
+    -------
+    tuple of ndarray
+        ``(t_s, y, u)``.
+
     Raises
     ------
     RecordError

@@ -18,7 +18,20 @@ __all__ = ["frequency_grid", "margins", "sensitivity_peak"]
 
 
 def frequency_grid(model, n: int = 1500) -> np.ndarray:
-    """Log-spaced grid around the model's phase crossover (1e-3 to 1e2 times it)."""
+    """Log-spaced grid around the model's phase crossover (1e-3 to 1e2 times it).
+
+    Parameters
+    ----------
+    model
+        ``(num, den, delay_s)`` or anything with ``tf()``.
+    n : int
+        Number of frequencies.
+
+    Returns
+    -------
+    ndarray
+        Angular frequencies (rad/s).
+    """
     r = phase_crossover(model)
     wu = r[1] if r is not None else 1.0
     return wu * np.geomspace(1e-3, 1e2, n)
@@ -26,7 +39,22 @@ def frequency_grid(model, n: int = 1500) -> np.ndarray:
 
 def sensitivity_peak(model, kp: float, ki: float, kd: float, tf_s: float,
                      w: np.ndarray | None = None) -> tuple[float, float]:
-    """``(Ms, w_ms)``: peak of ``|1/(1 + C G)|`` on a grid, refined by a local search."""
+    """``(Ms, w_ms)``: peak of ``|1/(1 + C G)|`` on a grid, refined by a local search.
+
+    Parameters
+    ----------
+    model
+        Loop model (``(num, den, delay_s)`` or anything with ``tf()``).
+    kp, ki, kd, tf_s : float
+        Controller gains and derivative filter time (s).
+    w : ndarray, optional
+        Frequency grid (default :func:`frequency_grid`).
+
+    Returns
+    -------
+    tuple of float
+        ``(Ms, w_ms)``, the peak and its angular frequency (rad/s).
+    """
     if w is None:
         w = frequency_grid(model)
     g = freq_response(model, w)
@@ -52,6 +80,15 @@ def margins(model, kp: float, ki: float, kd: float, tf_s: float,
 
     ``gm`` is ``inf`` (and ``w_pc`` nan) when the phase never crosses -180°; ``pm_deg`` is
     ``inf`` when ``|L|`` never crosses 1.
+
+    Parameters
+    ----------
+    model
+        Loop model (``(num, den, delay_s)`` or anything with ``tf()``).
+    kp, ki, kd, tf_s : float
+        Controller gains and derivative filter time (s).
+    w : ndarray, optional
+        Frequency grid (default :func:`frequency_grid`).
     """
     num, den, delay = as_tf(model)
     if w is None:

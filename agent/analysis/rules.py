@@ -26,7 +26,25 @@ def _parallel(K: float, Ti: float, Td: float) -> tuple[float, float, float]:
 def ziegler_nichols(ku: float, tu_s: float, controller: str) -> tuple[float, float, float]:
     """Ziegler & Nichols (1942), "Optimum settings for automatic controllers", Trans. ASME 64,
     ultimate-cycle table: P ``0.5 Ku``; PI ``0.45 Ku, Ti = Tu/1.2``;
-    PID ``0.6 Ku, Ti = Tu/2, Td = Tu/8``. No PD entry in the table."""
+    PID ``0.6 Ku, Ti = Tu/2, Td = Tu/8``. No PD entry in the table.
+
+    Parameters
+    ----------
+    ku, tu_s : float
+        Ultimate gain and period (s).
+    controller : {"p", "pi", "pid"}
+        Controller structure.
+
+    Returns
+    -------
+    tuple of float
+        ``(kp, ki, kd)``.
+
+    Raises
+    ------
+    ValueError
+        For a controller type the table does not cover.
+    """
     if controller == "pi":
         return _parallel(0.45 * ku, tu_s / 1.2, 0.0)
     if controller == "pid":
@@ -37,7 +55,25 @@ def ziegler_nichols(ku: float, tu_s: float, controller: str) -> tuple[float, flo
 def tyreus_luyben(ku: float, tu_s: float, controller: str) -> tuple[float, float, float]:
     """Tyreus & Luyben (1992), "Tuning PI controllers for integrator/dead time processes",
     Ind. Eng. Chem. Res. 31(11): PI ``Ku/3.2, Ti = 2.2 Tu``; PID ``Ku/2.2, Ti = 2.2 Tu,
-    Td = Tu/6.3``. No PD entry."""
+    Td = Tu/6.3``. No PD entry.
+
+    Parameters
+    ----------
+    ku, tu_s : float
+        Ultimate gain and period (s).
+    controller : {"pi", "pid"}
+        Controller structure.
+
+    Returns
+    -------
+    tuple of float
+        ``(kp, ki, kd)``.
+
+    Raises
+    ------
+    ValueError
+        For a controller type the table does not cover.
+    """
     if controller == "pi":
         return _parallel(ku / 3.2, 2.2 * tu_s, 0.0)
     if controller == "pid":
@@ -53,7 +89,29 @@ def astrom_hagglund_phase_margin(ku: float, tu_s: float, controller: str,
     unit circle at ``-180° + φm``. With ``ωu = 2π/Tu``: ``K = Ku cos φm`` and the controller
     phase at ωu must be ``φm``: PID with ``Ti = α Td`` gives
     ``ωu Td = (tan φm + sqrt(tan²φm + 4/α))/2``; PD gives ``ωu Td = tan φm``.
-    A PI cannot add phase, so the rule has no PI form."""
+    A PI cannot add phase, so the rule has no PI form.
+
+    Parameters
+    ----------
+    ku, tu_s : float
+        Ultimate gain and period (s).
+    controller : {"pid", "pd"}
+        Controller structure.
+    phase_margin_deg : float
+        Wanted phase margin (degrees).
+    alpha : float
+        Ratio ``Ti / Td`` of the PID.
+
+    Returns
+    -------
+    tuple of float
+        ``(kp, ki, kd)``.
+
+    Raises
+    ------
+    ValueError
+        For a controller type the rule does not cover.
+    """
     phi = np.radians(phase_margin_deg)
     wu = 2 * np.pi / tu_s
     K = ku * np.cos(phi)
@@ -82,6 +140,25 @@ def amigo(K: float, T: float, L: float, controller: str, integrating: bool = Fal
 
         K*kp = 0.2 + 0.45 T/L,   Ti = (0.4 L + 0.8 T)/(L + 0.1 T) L,   Td = 0.5 L T/(0.3 L + T)
         integrating: kp = 0.45/(K L),   Ti = 8 L,   Td = 0.5 L
+
+    Parameters
+    ----------
+    K, T, L : float
+        Gain, time constant (s) and dead time (s) of the model.
+    controller : {"pi", "pid"}
+        Controller structure.
+    integrating : bool
+        Use the integrating forms (``T`` unused).
+
+    Returns
+    -------
+    tuple of float
+        ``(kp, ki, kd)``.
+
+    Raises
+    ------
+    ValueError
+        For a non-positive gain or dead time, or a controller type the rules do not cover.
     """
     if L <= 0 or K <= 0:
         raise ValueError("AMIGO needs a positive gain and a positive dead time")
@@ -103,5 +180,15 @@ def amigo(K: float, T: float, L: float, controller: str, integrating: bool = Fal
 
 def amigo_setpoint_weight(tau: float) -> float:
     """AMIGO PID set-point weight: ``b = 0`` for ``tau <= 0.5``, ``b = 1`` above
-    (Åström & Hägglund 2004; value from memory)."""
+    (Åström & Hägglund 2004; value from memory).
+
+    Parameters
+    ----------
+    tau : float
+        Normalized time delay ``L / (L + T)``.
+
+    Returns
+    -------
+    float
+    """
     return 0.0 if tau <= 0.5 else 1.0

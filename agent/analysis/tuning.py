@@ -13,8 +13,8 @@ frequency, where models that fit the record almost equally well can differ (an i
 slow lag). The ``ms_constrained`` design therefore enforces the Ms bound on the chosen model
 and on every other fitted model the record cannot tell from it (misfit beyond the noise at
 most 2x the chosen model's, see ``_plausible_models``); the IAE is judged on the chosen
-model. For plants outside the model families the Ms on the real
-loop can still exceed the target (see tests/bench/identify.py for measured figures).
+model. For plants outside the model families the Ms on the real loop can still exceed the
+target (tests/bench/identify.py measures it).
 
 Ultimate-point rules use ``Identification.best`` (loop basis); AMIGO uses the FOPDT fit (or the
 integrating model) on the loop basis; ``ms_constrained`` is designed on the chosen loop model
@@ -101,9 +101,11 @@ class Candidate:
 
     @property
     def standard(self) -> dict:
+        """The gains in standard form (see :func:`agent.analysis.controller.standard_form`)."""
         return standard_form(self.kp, self.ki, self.kd, self.tf_s)
 
     def to_dict(self) -> dict:
+        """JSON-ready dictionary (floats, lists, strings)."""
         return {
             "rule": self.rule, "controller": self.controller, "source": self.source,
             "parallel": {"kp": float(self.kp), "ki": float(self.ki), "kd": float(self.kd),
@@ -129,6 +131,22 @@ class TuningResult:
     notes: tuple[str, ...] = field(default_factory=tuple)
 
     def get(self, rule: str) -> Candidate:
+        """The candidate of one rule.
+
+        Parameters
+        ----------
+        rule : str
+            The rule's name, e.g. ``"ms_constrained"``.
+
+        Returns
+        -------
+        Candidate
+
+        Raises
+        ------
+        KeyError
+            When no candidate came from that rule.
+        """
         for c in self.candidates:
             if c.rule == rule:
                 return c
@@ -136,9 +154,11 @@ class TuningResult:
 
     @property
     def recommended_candidate(self) -> Candidate:
+        """The candidate named by ``recommended``."""
         return self.get(self.recommended)
 
     def to_dict(self) -> dict:
+        """JSON-ready dictionary (floats, lists, strings)."""
         return {"controller": self.controller, "ms_target": float(self.ms_target),
                 "recommended": self.recommended, "notes": list(self.notes),
                 "candidates": [c.to_dict() for c in self.candidates]}
@@ -175,7 +195,29 @@ def make_candidate(rule: str, controller: str, model, kp: float, ki: float, kd: 
                    tf_s: float, b: float, sample_time_s: float, i_limit: float,
                    notes: tuple[str, ...] = (), noise_std: float = float("nan")) -> Candidate:
     """Appraise gains on ``model`` (loop basis) and wrap them as a :class:`Candidate`
-    (``noise_std``: the measurement noise, for ``output_noise``)."""
+    (``noise_std``: the measurement noise, for ``output_noise``).
+
+    Parameters
+    ----------
+    rule, controller : str
+        Name of the rule and controller structure.
+    model
+        Loop model the gains are appraised on.
+    kp, ki, kd, tf_s, b : float
+        Gains, derivative filter time (s) and set-point weight.
+    sample_time_s : float
+        The board's sample time.
+    i_limit : float
+        Integrator clamp (output units).
+    notes : tuple of str
+        Remarks shown with the candidate.
+    noise_std : float
+        Measurement noise (standard deviation).
+
+    Returns
+    -------
+    Candidate
+    """
     ms = sensitivity_peak(model, kp, ki, kd, tf_s)[0]
     gm, pm, _, _ = margins(model, kp, ki, kd, tf_s)
     pred = predict_step(model, _Gains(kp, ki, kd, tf_s, b), sample_time_s)
@@ -209,10 +251,8 @@ def _plausible_models(ident: Identification) -> tuple:
     ``sqrt(rmse^2 - noise^2)`` (white noise adds in quadrature). A model is plausible when its
     misfit is at most twice the chosen model's (three times for an integrating model when the
     chosen one is not), or below half a noise deviation plus 0.2 % of the amplitude (two fits
-    that both reach the noise). Common practice, no source;
-    calibrated on tests/bench/identify.py. A looser rule (residual within 2.5x) admitted models
-    that every fit rejects by many noise deviations and made the designs 2-4x slower than
-    needed on higher-order plants."""
+    that both reach the noise). Common practice, no source; calibrated on
+    tests/bench/identify.py (README.md)."""
     amp = ident.cycles.amplitude
     sig = float(ident.noise_std) if np.isfinite(ident.noise_std) else 0.0
 
@@ -241,6 +281,25 @@ def tune(ident: Identification, controller: str = "pi", ms_target: float = 1.4,
 
     ``max_output_noise``: the output deviation the identified measurement noise may cause
     (None: no bound); see the module docstring.
+
+    Parameters
+    ----------
+    ident : Identification
+        Result of :func:`agent.analysis.identify`.
+    controller : {"pi", "pd", "pid"}
+        Controller structure.
+    ms_target : float
+        Bound on the maximum sensitivity of the designed candidates.
+    sample_time_s : float
+        The board's loop sample time.
+    output_limit : float, optional
+        The loop's output limit (sizes the integrator clamp).
+    max_output_noise : float, optional
+        Bound on the output deviation caused by the measurement noise.
+
+    Returns
+    -------
+    TuningResult
 
     Raises
     ------

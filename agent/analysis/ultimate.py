@@ -50,6 +50,7 @@ class UltimatePoint:
     basis: str
 
     def to_dict(self) -> dict:
+        """JSON-ready dictionary (floats, lists, strings)."""
         return {"method": self.method, "ku": float(self.ku), "tu_s": float(self.tu_s),
                 "basis": self.basis}
 
@@ -61,6 +62,15 @@ def first_harmonic(t_s: np.ndarray, y: np.ndarray, u: np.ndarray, start: int, st
     ``start``/``stop`` must span ``n_periods`` whole periods (upward switch to upward switch).
     The means are removed first (they do not contribute over whole periods, but removing them
     reduces leakage from the ±1-sample uncertainty of the window ends).
+
+    Parameters
+    ----------
+    t_s, y, u : ndarray
+        Sample times, measurement and relay output.
+    start, stop : int
+        Sample window.
+    n_periods : int
+        Whole periods in the window.
     """
     t = t_s[start:stop]
     dt = float(np.median(np.diff(t_s)))
@@ -75,12 +85,38 @@ def first_harmonic(t_s: np.ndarray, y: np.ndarray, u: np.ndarray, start: int, st
 
 
 def describing_function_point(amplitude_y: float, d: float) -> complex:
-    """``G(jω0)`` implied by the ideal-relay describing function: ``-πa/(4d)``."""
+    """``G(jω0)`` implied by the ideal-relay describing function: ``-πa/(4d)``.
+
+    Parameters
+    ----------
+    amplitude_y : float
+        Oscillation amplitude of the measurement.
+    d : float
+        Relay amplitude.
+
+    Returns
+    -------
+    complex
+    """
     return complex(-np.pi * amplitude_y / (4 * d))
 
 
 def hysteresis_point(amplitude_y: float, d: float, eps: float) -> complex:
-    """``G(jω0)`` implied by the hysteresis describing function: ``-(πa/4d) exp(j asin(ε/a))``."""
+    """``G(jω0)`` implied by the hysteresis describing function: ``-(πa/4d) exp(j asin(ε/a))``.
+
+    Parameters
+    ----------
+    amplitude_y : float
+        Oscillation amplitude of the measurement.
+    d : float
+        Relay amplitude.
+    eps : float
+        Relay hysteresis (measurement units).
+
+    Returns
+    -------
+    complex
+    """
     r = np.clip(eps / amplitude_y, -0.99, 0.99)
     return complex(-np.pi * amplitude_y / (4 * d) * np.exp(1j * np.arcsin(r)))
 
@@ -92,6 +128,17 @@ def anchored_crossover(g0: complex, w0: float, shape: Callable[[np.ndarray], np.
     ``shape(w)`` is a model frequency response used only for its local shape; with ``None`` the
     phase slope of a pure delay through the point is assumed. ``delay_removed_s`` is removed
     (phase advance ``ω·delay``) to move from the loop to the plant basis.
+
+    Parameters
+    ----------
+    g0 : complex
+        Measured frequency response at ``w0``.
+    w0 : float
+        Oscillation frequency (rad/s).
+    shape : callable or None
+        Model frequency response ``shape(w)``.
+    delay_removed_s : float
+        Delay removed from the point (s).
     """
     ph0 = float(np.angle(g0))
     if ph0 > 0:
