@@ -45,10 +45,12 @@ class Frame(NamedTuple):
 
     @property
     def major(self) -> int:
+        """Protocol major version of the frame (high nibble of its version byte)."""
         return self.version >> 4
 
     @property
     def minor(self) -> int:
+        """Protocol minor version of the frame (low nibble of its version byte)."""
         return self.version & 0x0F
 
 
@@ -249,6 +251,18 @@ _LAYOUTS: dict[type, _Layout] = {spec.cls: _Layout(spec.cls) for spec in MESSAGE
 
 
 def encode_payload(msg) -> bytes:
+    """Encode a message's fields in wire order.
+
+    Parameters
+    ----------
+    msg
+        A message dataclass instance.
+
+    Returns
+    -------
+    bytes
+        Its payload (no header, CRC or framing).
+    """
     return _LAYOUTS[type(msg)].pack(msg)
 
 
@@ -316,6 +330,7 @@ def decode_frame(raw_encoded: bytes) -> Frame:
 
 @dataclass
 class DecoderStats:
+    """Counts of what a StreamDecoder met: good frames, each kind of bad one, bytes fed."""
     good: int = 0
     bad_crc: int = 0
     bad_cobs: int = 0
@@ -327,6 +342,7 @@ class DecoderStats:
 
     @property
     def bad(self) -> int:
+        """Frames dropped as damaged (CRC, COBS, short, oversize, malformed)."""
         return self.bad_crc + self.bad_cobs + self.short + self.oversize + self.malformed
 
 
@@ -348,6 +364,18 @@ class StreamDecoder:
         return len(self._buf)
 
     def feed(self, chunk: bytes) -> list[Frame]:
+        """Feed received bytes and return the frames they complete.
+
+        Parameters
+        ----------
+        chunk : bytes
+            Bytes as they arrived; frames may span chunks.
+
+        Returns
+        -------
+        list of Frame
+            The frames completed by this chunk, damaged ones dropped and counted in ``stats``.
+        """
         frames: list[Frame] = []
         if not chunk:
             return frames

@@ -26,6 +26,17 @@ def _size_text(spec) -> str:
 
 
 def describe_text(markdown: bool = False) -> str:
+    """The message table in words: every message with its fields, sender and legal states.
+
+    Parameters
+    ----------
+    markdown : bool
+        Markdown tables instead of plain text.
+
+    Returns
+    -------
+    str
+    """
     lines: list[str] = []
     for type_id in sorted(MESSAGES):
         spec = MESSAGES[type_id]
@@ -380,6 +391,7 @@ def generated_section(text: str) -> str:
 
 
 def main(argv: list[str] | None = None) -> int:
+    """``python -m protocol.describe``: print the message table, its SPEC.md tables, or refresh SPEC.md; returns the exit code."""
     import argparse
     from pathlib import Path
     ap = argparse.ArgumentParser(prog="python -m protocol.describe",

@@ -74,6 +74,7 @@ def member(name: str) -> str:
 
 
 def struct_name(cls: type) -> str:
+    """C struct name of a message or item class (``tl_`` plus its snake-case name)."""
     return "tl_" + snake(cls.__name__)
 
 
@@ -137,6 +138,7 @@ def _check_field(f: FieldSpec, owner: str, in_item: bool = False) -> None:
 
 
 def item_size(item: type) -> int:
+    """Wire size in bytes of one item of a list field."""
     return sum(_SIZES[g.wire] for g in field_specs(item))
 
 
@@ -146,6 +148,7 @@ def fixed_payload_bytes(cls: type) -> int:
 
 
 def list_items() -> list[type]:
+    """Every list-item class the message table uses, in table order, each once."""
     items: list[type] = []
     for spec in MESSAGES.values():
         for f in spec.fields:
@@ -403,6 +406,7 @@ def write(directory: str | Path) -> list[Path]:
 
 
 def main(argv: list[str] | None = None) -> int:
+    """``python -m protocol.emit_c DIR``: write the generated C files into DIR; returns the exit code."""
     args = sys.argv[1:] if argv is None else argv
     if len(args) != 1 or args[0].startswith("-"):
         print("usage: python -m protocol.emit_c DIR   (the checked-in copy: protocol/c/generated)",

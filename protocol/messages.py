@@ -71,6 +71,7 @@ PROTOCOL_MINOR = 0
 
 
 class Axis(enum.IntEnum):
+    """The stand's axes: three rotations and the vertical (heave)."""
     ROLL = 0
     PITCH = 1
     YAW = 2
@@ -86,6 +87,7 @@ class Loop(enum.IntEnum):
 
 
 class DeviceState(enum.IntEnum):
+    """State of the device; the transitions are in the module docstring and SPEC.md."""
     DISARMED = 0
     ARMED = 1
     RUNNING = 2  # armed and running an experiment
@@ -93,12 +95,14 @@ class DeviceState(enum.IntEnum):
 
 
 class ExperimentKind(enum.IntEnum):
+    """Experiment a device runs on one loop."""
     RELAY = 1
     STEP = 2
     HOLD = 3
 
 
 class RefuseCode(enum.IntEnum):
+    """Why a device refused a request (Refuse.code)."""
     UNKNOWN_TYPE = 1  # message type id not known to this device
     MALFORMED = 2  # payload too short or a field out of its wire range
     WRONG_STATE = 3  # not legal in the device's current state
@@ -117,6 +121,7 @@ class RefuseCode(enum.IntEnum):
 
 
 class KillReason(enum.IntEnum):
+    """Who or what killed the outputs: the host (HOST_*) or the device."""
     HOST_OPERATOR = 1  # the operator asked (key, Ctrl-C, button in the UI)
     HOST_MONITOR = 2  # host safety monitor saw a limit crossed in telemetry
     HOST_LINK = 3  # host saw reply time-outs or a link problem
@@ -131,6 +136,7 @@ class KillReason(enum.IntEnum):
 
 
 class EventKind(enum.IntEnum):
+    """What an Event reports."""
     STATE_CHANGED = 1
     EXPERIMENT_STARTED = 2
     EXPERIMENT_FINISHED = 3  # reason: FinishReason
@@ -141,6 +147,7 @@ class EventKind(enum.IntEnum):
 
 
 class FinishReason(enum.IntEnum):
+    """Why an experiment ended."""
     STOPPED = 1  # host sent ExperimentStop
     DURATION_LIMIT = 2  # the experiment's duration limit was reached
     KILLED = 3
@@ -148,6 +155,7 @@ class FinishReason(enum.IntEnum):
 
 
 class SettingType(enum.IntEnum):
+    """How a setting's f32 value is to be read."""
     FLOAT = 0
     INT = 1  # integral value carried as f32
     BOOL = 2  # 0.0 or 1.0
@@ -155,12 +163,14 @@ class SettingType(enum.IntEnum):
 
 
 class SettingFlags(enum.IntFlag):
+    """Restrictions on writing a setting (bit flags)."""
     NONE = 0
     READ_ONLY = 1
     DISARMED_ONLY = 2  # may only be written while disarmed
 
 
 class Capability(enum.IntFlag):
+    """What a device can do, announced in HelloReply (bit flags)."""
     RELAY = 0x01
     STEP = 0x02
     HOLD = 0x04
@@ -197,6 +207,7 @@ def wire(kind: str, doc: str, unit: str = "", enum_: type | None = None, item: t
 
 @dataclass(frozen=True)
 class FieldSpec:
+    """One wire field of a message or list item: name, wire type, meaning, unit, and the enum or item class it carries."""
     name: str
     wire: str
     doc: str
@@ -206,6 +217,7 @@ class FieldSpec:
 
     @property
     def size(self) -> int | None:
+        """Bytes on the wire, or None for the variable-length types (text, lists)."""
         return _SIZES.get(self.wire)
 
 
@@ -266,6 +278,7 @@ AxisSample.WIRE = (
 
 @dataclass(frozen=True)
 class MessageSpec:
+    """One row of the message table: type id, name, class, sender, meaning, the device states it is legal in and its replies."""
     type_id: int
     name: str
     cls: type
@@ -276,6 +289,7 @@ class MessageSpec:
 
     @property
     def fields(self) -> tuple[FieldSpec, ...]:
+        """The message's wire fields in order."""
         return field_specs(self.cls)
 
 
@@ -284,6 +298,24 @@ BY_CLASS: dict[type, MessageSpec] = {}
 
 
 def message(type_id: int, sender: str, legal_in=ANY_STATE, replies: tuple[str, ...] = ()):
+    """Class decorator that enters a message class in the table.
+
+    Parameters
+    ----------
+    type_id : int
+        The message's type id (unique in the table).
+    sender : {"host", "device"}
+        Who sends it.
+    legal_in : iterable of DeviceState
+        States in which the device accepts it (host messages).
+    replies : tuple of str
+        Names of the messages the device answers with.
+
+    Returns
+    -------
+    callable
+        The decorator: makes the class a frozen dataclass and enters it in ``MESSAGES``.
+    """
     def deco(cls):
         cls = dataclass(frozen=True)(cls)
         doc = " ".join((cls.__doc__ or "").split())
@@ -534,10 +566,42 @@ class UnknownMessage:
 
 
 def spec_of(msg: Any) -> MessageSpec:
+    """The table row of a message instance.
+
+    Parameters
+    ----------
+    msg
+        A message dataclass instance.
+
+    Returns
+    -------
+    MessageSpec
+
+    Raises
+    ------
+    KeyError
+        When its class is not on the message table.
+    """
     return BY_CLASS[type(msg)]
 
 
 def by_name(name: str) -> MessageSpec:
+    """The table row of a message name.
+
+    Parameters
+    ----------
+    name : str
+        Snake-case message name, e.g. ``"setting_write"``.
+
+    Returns
+    -------
+    MessageSpec
+
+    Raises
+    ------
+    KeyError
+        When no message has that name.
+    """
     for spec in MESSAGES.values():
         if spec.name == name:
             return spec
@@ -545,8 +609,10 @@ def by_name(name: str) -> MessageSpec:
 
 
 def loop_names() -> dict[str, Loop]:
+    """Loop levels by lower-case name (``{"rate": Loop.RATE, ...}``)."""
     return {lv.name.lower(): lv for lv in Loop}
 
 
 def axis_names() -> dict[str, Axis]:
+    """Axes by lower-case name (``{"roll": Axis.ROLL, ...}``)."""
     return {ax.name.lower(): ax for ax in Axis}

@@ -33,6 +33,7 @@ FRAME_GOOD, FRAME_UNKNOWN_TYPE, FRAME_OTHER_MAJOR, FRAME_MALFORMED = 0, 1, 2, 3
 
 
 class CStr(C.Structure):
+    """ctypes mirror of tl_str: a length and the UTF-8 bytes."""
     _fields_ = [("len", C.c_uint8), ("data", C.c_uint8 * (MAX_STR_BYTES + 1))]
 
 
@@ -61,25 +62,30 @@ STRUCTS = {tid: _struct_for(spec) for tid, spec in sorted(MESSAGES.items())}
 
 
 class CBody(C.Union):
+    """ctypes mirror of the union of every message struct."""
     _fields_ = [(MESSAGES[tid].name, st) for tid, st in STRUCTS.items()]
 
 
 class CMessage(C.Structure):
+    """ctypes mirror of tl_message: a type id and the body union."""
     _fields_ = [("type_id", C.c_uint8), ("body", CBody)]
 
 
 class CStats(C.Structure):
+    """ctypes mirror of the C decoder's counters."""
     _fields_ = [(n, C.c_uint32) for n in ("good", "bad_crc", "bad_cobs", "too_short", "oversize",
                                           "malformed", "unknown_type", "bytes_in")]
 
 
 class CFrame(C.Structure):
+    """ctypes mirror of tl_frame, the frame the C decoder hands up."""
     _fields_ = [("kind", C.c_uint8), ("version", C.c_uint8), ("type_id", C.c_uint8),
                 ("flags", C.c_uint8), ("seq", C.c_uint16), ("payload_len", C.c_uint8),
                 ("payload", C.POINTER(C.c_uint8)), ("msg", CMessage)]
 
 
 class CDecoderState(C.Structure):
+    """ctypes mirror of tl_decoder: buffer, length, discarding flag, counters."""
     _fields_ = [("buf", C.c_uint8 * MAX_ENCODED), ("len", C.c_uint16),
                 ("discarding", C.c_uint8), ("stats", CStats)]
 
@@ -161,9 +167,11 @@ class CLib:
     path: Path
 
     def crc32(self, data: bytes) -> int:
+        """tl_crc32 of the bytes."""
         return self.dll.tl_crc32(data, len(data))
 
     def cobs_encode(self, data: bytes) -> bytes:
+        """tl_cobs_encode: the COBS encoding of the bytes (no delimiter)."""
         out = (C.c_uint8 * (len(data) + 2 + len(data) // 254))()
         n = self.dll.tl_cobs_encode(data, len(data), out, len(out))
         if n == 0:
@@ -177,6 +185,7 @@ class CLib:
         return None if n < 0 else bytes(out[:n])
 
     def utf8_valid(self, data: bytes) -> bool:
+        """tl_utf8_valid: whether the bytes are valid UTF-8."""
         return bool(self.dll.tl_utf8_valid(data, len(data)))
 
     def encode(self, msg, seq: int, flags: int = 0) -> bytes:
@@ -188,6 +197,7 @@ class CLib:
         return bytes(out[:n])
 
     def encode_payload(self, msg) -> bytes:
+        """The payload bytes of a message dataclass as the C encoder writes them."""
         out = (C.c_uint8 * 256)()
         n = self.dll.tl_encode_payload(C.byref(to_c(msg)), out, len(out))
         if n < 0:
@@ -196,6 +206,7 @@ class CLib:
 
     def frame_encode(self, version: int, type_id: int, seq: int, flags: int,
                      payload: bytes) -> bytes:
+        """tl_frame_encode: a whole frame around a given payload."""
         out = (C.c_uint8 * (MAX_ENCODED + 1))()
         n = self.dll.tl_frame_encode(version, type_id, seq, flags, payload, len(payload), out,
                                      len(out))
@@ -212,9 +223,11 @@ class CLib:
         return from_c(cmsg)
 
     def decoder(self) -> CDecoder:
+        """A new C stream decoder."""
         return CDecoder(self)
 
     def ring(self) -> CRingHandle:
+        """A new C receive ring."""
         return CRingHandle(self)
 
 
@@ -229,16 +242,19 @@ class CDecoder:
 
     @property
     def buffered(self) -> int:
+        """Bytes the C decoder holds waiting for a delimiter."""
         return self.state.len
 
     @property
     def stats(self) -> DecoderStats:
+        """The C decoder's counters as the Python codec's DecoderStats."""
         s = self.state.stats
         return DecoderStats(good=s.good, bad_crc=s.bad_crc, bad_cobs=s.bad_cobs, short=s.too_short,
                             oversize=s.oversize, malformed=s.malformed,
                             unknown_type=s.unknown_type, bytes_in=s.bytes_in)
 
     def feed(self, chunk: bytes) -> list[Frame]:
+        """Feed bytes to tl_decoder_feed; the frames completed, as codec.Frame."""
         frames = []
         buf = (C.c_uint8 * len(chunk)).from_buffer_copy(chunk) if chunk else None
         pos, used = 0, C.c_size_t()
@@ -277,6 +293,7 @@ class CRingHandle:
         return sum(self.lib.dll.tl_ring_push(C.byref(self.state), b) for b in data)
 
     def pop_all(self) -> bytes:
+        """Pop every byte the ring holds, as the tick would."""
         out, b = bytearray(), C.c_uint8()
         while self.lib.dll.tl_ring_pop(C.byref(self.state), C.byref(b)):
             out.append(b.value)
@@ -284,10 +301,12 @@ class CRingHandle:
 
     @property
     def count(self) -> int:
+        """Bytes waiting in the ring."""
         return self.lib.dll.tl_ring_count(C.byref(self.state))
 
     @property
     def dropped(self) -> int:
+        """Bytes dropped because the ring was full."""
         return self.state.dropped
 
     def poll(self, decoder: CDecoder) -> list[Frame]:

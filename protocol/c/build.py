@@ -103,6 +103,7 @@ def cache_dir() -> Path:
 
 
 def library_sources() -> list[Path]:
+    """The C files of the board-side library, in build order."""
     return [C_DIR / s for s in LIBRARY_SOURCES]
 
 

@@ -26,7 +26,7 @@
 
 /* ------------------------------------------------------------ enumerations */
 
-/* Axis (values) */
+/* Axis (values): The stand's axes: three rotations and the vertical (heave). */
 enum tl_axis {
     TL_AXIS_ROLL = 0,
     TL_AXIS_PITCH = 1,
@@ -44,7 +44,9 @@ enum tl_loop {
     TL_LOOP_HEAVE = 2 /* outer height loop of the heave axis (m) */
 };
 
-/* DeviceState (values) */
+/* DeviceState (values): State of the device; the transitions are in the module docstring and
+ * SPEC.md.
+ */
 enum tl_device_state {
     TL_DEVICE_STATE_DISARMED = 0, /* outputs zero; boot state */
     TL_DEVICE_STATE_ARMED = 1, /* loops closed, outputs live */
@@ -52,14 +54,14 @@ enum tl_device_state {
     TL_DEVICE_STATE_KILLED = 3 /* outputs forced to zero; latched until KillClear */
 };
 
-/* ExperimentKind (values) */
+/* ExperimentKind (values): Experiment a device runs on one loop. */
 enum tl_experiment_kind {
     TL_EXPERIMENT_KIND_RELAY = 1, /* relay feedback on the selected loop */
     TL_EXPERIMENT_KIND_STEP = 2, /* setpoint step on the selected loop */
     TL_EXPERIMENT_KIND_HOLD = 3 /* selected loop holds its setpoint */
 };
 
-/* RefuseCode (values) */
+/* RefuseCode (values): Why a device refused a request (Refuse.code). */
 enum tl_refuse_code {
     /* type id not in this device's table; detail = the type id */
     TL_REFUSE_CODE_UNKNOWN_TYPE = 1,
@@ -109,7 +111,7 @@ enum tl_refuse_code {
     TL_REFUSE_CODE_STORAGE = 15
 };
 
-/* KillReason (values) */
+/* KillReason (values): Who or what killed the outputs: the host (HOST_*) or the device. */
 enum tl_kill_reason {
     TL_KILL_REASON_HOST_OPERATOR = 1, /* the operator asked (key, Ctrl-C, UI button) */
     TL_KILL_REASON_HOST_MONITOR = 2, /* host safety monitor saw a limit crossed in telemetry */
@@ -124,7 +126,7 @@ enum tl_kill_reason {
     TL_KILL_REASON_SENSOR_FAULT = 11 /* device: a sensor stuck or out of range */
 };
 
-/* EventKind (values) */
+/* EventKind (values): What an Event reports. */
 enum tl_event_kind {
     TL_EVENT_KIND_STATE_CHANGED = 1,
     TL_EVENT_KIND_EXPERIMENT_STARTED = 2, /* reason: ExperimentKind */
@@ -136,7 +138,7 @@ enum tl_event_kind {
     TL_EVENT_KIND_FAULT = 7 /* text says what */
 };
 
-/* FinishReason (values) */
+/* FinishReason (values): Why an experiment ended. */
 enum tl_finish_reason {
     TL_FINISH_REASON_STOPPED = 1, /* host sent ExperimentStop */
     TL_FINISH_REASON_DURATION_LIMIT = 2, /* duration_s reached */
@@ -144,7 +146,7 @@ enum tl_finish_reason {
     TL_FINISH_REASON_DISARMED = 4
 };
 
-/* SettingType (values) */
+/* SettingType (values): How a setting's f32 value is to be read. */
 enum tl_setting_type {
     TL_SETTING_TYPE_FLOAT = 0,
     TL_SETTING_TYPE_INT = 1, /* integral value carried as f32 */
@@ -152,14 +154,14 @@ enum tl_setting_type {
     TL_SETTING_TYPE_CHOICE = 3 /* small non-negative integer naming an option, carried as f32 */
 };
 
-/* SettingFlags (bit flags) */
+/* SettingFlags (bit flags): Restrictions on writing a setting (bit flags). */
 enum tl_setting_flags {
     TL_SETTING_FLAGS_NONE = 0,
     TL_SETTING_FLAGS_READ_ONLY = 1,
     TL_SETTING_FLAGS_DISARMED_ONLY = 2 /* may only be written while DISARMED */
 };
 
-/* Capability (bit flags) */
+/* Capability (bit flags): What a device can do, announced in HelloReply (bit flags). */
 enum tl_capability {
     TL_CAPABILITY_RELAY = 1,
     TL_CAPABILITY_STEP = 2,
